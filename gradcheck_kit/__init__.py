@@ -1,0 +1,16 @@
+"""gradcheck_kit: check analytic gradients against careful numerical derivatives.
+
+The pipeline, one module per stage (see DEVELOPERS.md):
+tree -> plan -> evaluate -> stencils -> verdicts -> report -> front ends.
+"""
+from .assertions import assert_gradient_matches
+from .errors import CheckInputError, GradientMismatchError
+from .pipeline import compare_gradient, numeric_gradient
+from .report import GradientReport, Row
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "numeric_gradient", "compare_gradient", "assert_gradient_matches",
+    "GradientReport", "Row", "GradientMismatchError", "CheckInputError",
+]

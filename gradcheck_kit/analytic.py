@@ -1,0 +1,61 @@
+"""The analytic side: the gradient the user claims, as one flat vector.
+
+`gradient` may be a function of params (called on a private copy), an already
+computed structure like params, or None, in which case autograd derives it
+from the cost (which checks custom autograd rules).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .errors import CheckInputError
+from .tree import Layout, flatten_like, rebuild
+
+
+def _add_batch_axis(tree):
+    """params -> a batch of one, traced by autograd (for vectorized costs)."""
+    import autograd.numpy as anp
+
+    if isinstance(tree, dict):
+        return type(tree)((k, _add_batch_axis(v)) for k, v in tree.items())
+    if isinstance(tree, (list, tuple)):
+        items = [_add_batch_axis(v) for v in tree]
+        return type(tree)(*items) if hasattr(tree, "_fields") else type(tree)(items)
+    return anp.reshape(tree, (1,) + anp.shape(tree))
+
+
+def autograd_gradient(cost, params, vectorized=False):
+    try:
+        import autograd
+    except ImportError as exc:  # pragma: no cover - autograd is a core dependency
+        raise CheckInputError("gradient=None needs autograd: pip install autograd") from exc
+    if vectorized:
+        import autograd.numpy as anp
+
+        def one(p):
+            return anp.sum(cost(_add_batch_axis(p)))
+        return autograd.grad(one)(params)
+    return autograd.grad(cost)(params)
+
+
+def analytic_vector(cost, base: np.ndarray, layout: Layout, gradient, vectorized=False):
+    """The analytic gradient flattened like params; clear errors for every misfit."""
+    params = rebuild(base.copy(), layout)
+    if gradient is None:
+        try:
+            value = autograd_gradient(cost, params, vectorized)
+        except Exception as exc:
+            raise CheckInputError(
+                f"gradient=None: autograd could not differentiate the cost ({type(exc).__name__}: "
+                f"{exc}). Write the cost with autograd.numpy, or pass gradient=") from exc
+    elif callable(gradient):
+        try:
+            value = gradient(params)
+        except Exception as exc:
+            raise CheckInputError(
+                f"gradient function raised {type(exc).__name__} at the base point: {exc}") from exc
+    else:
+        value = gradient
+    if isinstance(value, (np.ndarray, float)) and np.size(value) == 1 and layout.size == 1:
+        value = np.reshape(value, layout.leaves[0].shape) if layout.leaves[0].shape else value
+    return flatten_like(value, layout, "gradient")
