@@ -2,15 +2,17 @@
 
 Default rule (no rtol / atol given).  A coordinate agrees when
 
-    |analytic - numeric| <= 2 * error_estimate + 100 * eps_f * (|analytic| + |f0| / scale)
+    |analytic - numeric| <= 2 * error_estimate + 1000 * eps_f * (|analytic| + terms)
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
-rounding, from stencils.py); the second term allows for rounding in the
-analytic gradient itself, which is computed in floating point too: a gradient
-summed from many terms of size about |f0| / scale carries rounding of that
-order.  This is what keeps a zero gradient at a minimiser from a false alarm.
-eps_f is the relative precision of the cost's values (dtype epsilon or measured
-noise).
+rounding, from stencils.py).  The second part allows for rounding in the
+analytic gradient itself, which is computed in floating point too and is
+summed from terms that may be far larger than the result: near a minimiser
+the gradient is zero but its terms are not.  `terms` estimates their size per
+coordinate as the largest of: the largest numeric gradient entry, |f0| / scale,
+and |f2| * scale (the second derivative seen by the stencil, or along the
+complex-step probe direction).  eps_f is the relative precision of the cost's
+values (dtype epsilon, or measured noise where that is larger).
 
 With rtol and/or atol the rule is numpy's: agree when
 |analytic - numeric| <= atol + rtol * |numeric|, a missing one counting as 0;
@@ -23,13 +25,19 @@ import numpy as np
 VERDICTS = ("agree", "disagree", "kink", "noisy", "non-finite", "error")
 FAILING = ("disagree", "non-finite", "error")   # verdicts that fail a report
 SAFETY = 2.0
-ANALYTIC_ROUNDING = 100.0
+ANALYTIC_ROUNDING = 1000.0
 
 
-def allowed_difference(analytic, numeric, error, *, f0, scale, eps_f, rtol=None, atol=None):
+def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
+    """Size of the terms each gradient entry is made of (see module text)."""
+    largest = float(np.max(np.abs(numeric[np.isfinite(numeric)]), initial=0.0))
+    return np.maximum(np.maximum(largest, abs(f0) / scale), curvature_times_scale)
+
+
+def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None):
     """How far apart analytic and numeric may be, per coordinate (see module text)."""
     if rtol is None and atol is None:
-        return SAFETY * error + ANALYTIC_ROUNDING * eps_f * (np.abs(analytic) + abs(f0) / scale)
+        return SAFETY * error + ANALYTIC_ROUNDING * eps_f * (np.abs(analytic) + terms)
     return (atol or 0.0) + (rtol or 0.0) * np.abs(numeric)
 
 
