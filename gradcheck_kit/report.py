@@ -200,7 +200,7 @@ def summary_line(report: GradientReport) -> str:
              f"{checked} coordinates, none fail"]
     others = [f"{counts[v]} {v}" for v in VERDICTS if v != "agree" and counts.get(v)]
     if others:
-        parts.append("(" + ", ".join(others) + ")")
+        parts[0] += " (" + ", ".join(others) + ")"
     if checked < report.total:
         parts.append(f"of {report.total} in params")
     worst = report.worst_rel_error

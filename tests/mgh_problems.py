@@ -14,11 +14,14 @@ import functools
 from dataclasses import dataclass
 from types import SimpleNamespace
 
+import autograd.numpy as anp
 import mpmath
 import numpy as np
 import sympy
 
 NP = SimpleNamespace(exp=np.exp, sin=np.sin, cos=np.cos, sqrt=np.sqrt, atan=np.arctan, pi=np.pi)
+AG = SimpleNamespace(exp=anp.exp, sin=anp.sin, cos=anp.cos, sqrt=anp.sqrt, atan=anp.arctan,
+                     pi=np.pi)
 SYM = SimpleNamespace(exp=sympy.exp, sin=sympy.sin, cos=sympy.cos, sqrt=sympy.sqrt,
                       atan=sympy.atan, pi=sympy.pi)
 
