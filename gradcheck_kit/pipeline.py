@@ -31,6 +31,8 @@ class Setup:
     notes: list = field(default_factory=list)
     problems: list = field(default_factory=list)
     curvature_s2: float = 0.0    # typical |f2| * scale^2, seen along the noise line
+    line_slope: float = 0.0      # largest |f - f0| / distance along the noise line
+    line_third: float = 0.0      # largest |third difference| / t^3 along the noise line
     noise: float = 0.0           # measured noise of the cost's values (absolute)
 
 
@@ -45,13 +47,17 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None) -> 
     scale = stencils.scale_of(base)
     noise, line = measure_noise(runner, base, scale, f0)
     curvature_s2 = line_curvature(line, base, scale)
+    line_slope = 0.0 if line is None else float(
+        np.max(np.abs(line - f0)) / ((len(line) // 2) * stencils.NOISE_SPACING))
+    line_third = 0.0 if line is None else float(
+        np.max(np.abs(np.diff(line, 3))) / stencils.NOISE_SPACING ** 3)
     eps_f = relative_precision(runner.output_dtype, noise, f0)
     # Steps grow only for costs noisy well beyond rounding (More & Wild, ACM TOMS 38(3),
     # 2012); rounding-level noise enlarged by cancellation only enters the error estimates.
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
     eps = np.maximum(leaf_eps(layout), eps_f if eps_f > NOISY_ABOVE * dtype_eps else dtype_eps)
     return Setup(runner, base, layout, f0, eps_f, eps, scale, noise=noise,
-                 curvature_s2=curvature_s2)
+                 curvature_s2=curvature_s2, line_slope=line_slope, line_third=line_third)
 
 
 def line_curvature(line, base, scale) -> float:
@@ -77,9 +83,14 @@ def relative_precision(dtype, noise: float, f0: float) -> float:
 
 
 def noise_direction(size: int, scale: np.ndarray, seed=0) -> np.ndarray:
-    """A random direction whose entries are at most the coordinates' scales."""
-    z = np.random.default_rng(seed).standard_normal(size)
-    return z * scale / np.max(np.abs(z))
+    """A random direction with entries of random sign and size between scale/4 and scale.
+
+    Entries are powers of two, so with a power-of-two spacing every point on the
+    line is exact even in float32 leaves: rounding the inputs would look like noise.
+    """
+    rng = np.random.default_rng(seed)
+    sign = rng.choice([-1.0, 1.0], size=size)
+    return sign * stencils.power_of_two(scale * rng.uniform(0.5, 1.0, size=size))
 
 
 def measure_noise(runner: CostRunner, base, scale, f0, seed=0) -> tuple:
@@ -167,7 +178,7 @@ def _one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> N
         done[:] = True
     s = setup.scale[coords]
     est = stencils.combine(method, values, setup.f0, h[coords], setup.eps_f, s, setup.noise,
-                           setup.curvature_s2 / s ** 2)
+                           setup.curvature_s2 / s ** 2, setup.line_third / s ** 3)
     return Numeric(coords, est, failed, details, done)
 
 
@@ -176,7 +187,8 @@ def term_scale(setup: Setup, numeric: Numeric) -> np.ndarray:
     est = numeric.estimates
     s = setup.scale[numeric.coords]
     return verdicts.term_scale(est.derivative, setup.f0, s,
-                               est.curvature * s + setup.curvature_s2 / s)
+                               np.maximum(est.curvature * s + setup.curvature_s2 / s,
+                                          setup.line_slope / s))
 
 
 def resolve_method(setup: Setup, method: str, seed) -> str:

@@ -69,13 +69,14 @@ def power_of_two(h):
 
 
 def combine(method: str, values: np.ndarray, f0: float, h: np.ndarray, eps_f,
-            scale: np.ndarray, noise_level: float = 0.0, curvature_hint=0.0) -> Estimates:
+            scale: np.ndarray, noise_level: float = 0.0, curvature_hint=0.0,
+            third_hint=0.0) -> Estimates:
     """Derivative estimates from `values` of shape (n, len(OFFSETS[method])).
 
     eps_f is the relative accuracy of the cost's values (machine epsilon of its
     dtype, or its measured noise over |f0|, whichever is larger); noise_level the
     measured absolute noise of one value (see noise_from_values); curvature_hint
-    a typical |f2| for stencils that see none.  Below, f1, f2,
+    and third_hint a typical |f2| and |f3| for stencils that see none.  Below, f1, f2,
     f3, f5 name the first, second, third and fifth derivatives.
     """
     f = values
@@ -84,7 +85,10 @@ def combine(method: str, values: np.ndarray, f0: float, h: np.ndarray, eps_f,
     zero = np.zeros(len(h))
     if method == "complex-step":
         d = f[:, 0].imag / h
-        return Estimates(d, h ** 2 * np.abs(d) / (6 * scale ** 2), eps_f * np.abs(d), zero)
+        # Truncation h^2 |f3| / 6, with |f3| from the model |f1| / scale^2 or the hint.
+        f3 = np.maximum(np.abs(d) / scale ** 2, third_hint)
+        # Rounding: the imaginary part is a sum of terms of about |f1| and |f0| / scale.
+        return Estimates(d, h ** 2 * f3 / 6, 4 * eps_f * (np.abs(d) + abs(f0) / scale), zero)
     if method in ("forward", "backward"):
         sign = 1.0 if method == "forward" else -1.0
         d = sign * (f[:, 0] - f0) / h
@@ -178,7 +182,7 @@ def directional_curvature(real_values, f0: float, t: float) -> float:
 # with spacing t the k-th differences of a smooth function shrink like t^k, while
 # those of noise of size s keep a spread of about s * sqrt((2k)! / (k!)^2).
 NOISE_POINTS = 9          # f at x + j t v for j = -4..4 (the centre is f0)
-NOISE_SPACING = 1e-6      # t relative to the coordinate scales
+NOISE_SPACING = 2.0 ** -20  # t (about 1e-6) relative to the coordinate scales
 
 
 def noise_from_values(values) -> tuple:

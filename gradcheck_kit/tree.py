@@ -63,6 +63,10 @@ def _check_leaf(value: Any, path: tuple, what: str) -> tuple:
     if isinstance(value, np.ndarray):
         if np.issubdtype(value.dtype, np.floating):
             return value, "array"
+        if np.issubdtype(value.dtype, np.integer) or value.dtype == np.bool_:
+            raise CheckInputError(
+                f"{what} leaf '{name}' is an integer or boolean array ({value.dtype}); gradients "
+                "need floating-point leaves: convert it with .astype(float)")
         if np.issubdtype(value.dtype, np.complexfloating):
             raise CheckInputError(
                 f"{what} leaf '{name}' is complex ({value.dtype}); only real parameters are checked "

@@ -10,8 +10,8 @@ analytic gradient itself, which is computed in floating point too and is
 summed from terms that may be far larger than the result: near a minimiser
 the gradient is zero but its terms are not.  `terms` estimates their size per
 coordinate as the largest of: the largest numeric gradient entry, |f0| / scale,
-and |f2| * scale (the second derivative seen by the stencil, or along the
-complex-step probe direction).  eps_f is the relative precision of the cost's
+|f2| * scale (the second derivative seen by the stencil, or a typical one
+seen along the noise probe's line) and the cost's slope along that line.  eps_f is the relative precision of the cost's
 values (dtype epsilon, or measured noise where that is larger).
 
 With rtol and/or atol the rule is numpy's: agree when
