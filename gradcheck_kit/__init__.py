@@ -5,12 +5,15 @@ tree -> plan -> evaluate -> stencils -> verdicts -> report -> front ends.
 """
 from .assertions import assert_gradient_matches
 from .errors import CheckInputError, GradientMismatchError
-from .pipeline import compare_gradient, numeric_gradient
+from .jacobian import compare_jacobian
+from .pipeline import NoiseEstimate, compare_gradient, estimate_noise, numeric_gradient
+from .taylor import TaylorResult, taylor_test
 from .report import GradientReport, Row
 
 __version__ = "0.1.0"
 
 __all__ = [
-    "numeric_gradient", "compare_gradient", "assert_gradient_matches",
+    "numeric_gradient", "compare_gradient", "assert_gradient_matches", "compare_jacobian",
+    "taylor_test", "estimate_noise", "TaylorResult", "NoiseEstimate",
     "GradientReport", "Row", "GradientMismatchError", "CheckInputError",
 ]

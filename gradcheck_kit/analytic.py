@@ -24,6 +24,19 @@ def _add_batch_axis(tree):
     return anp.reshape(tree, (1,) + anp.shape(tree))
 
 
+def traced_rebuild(v, layout: Layout):
+    """rebuild() for a vector autograd is tracing: slices and reshapes only."""
+    import autograd.numpy as anp
+
+    from .tree import _assemble
+
+    leaves = []
+    for leaf in layout.leaves:
+        seg = v[leaf.offset:leaf.offset + leaf.size]
+        leaves.append(anp.reshape(seg, leaf.shape) if leaf.shape else seg[0])
+    return _assemble(layout.skeleton, leaves)
+
+
 def autograd_gradient(cost, params, vectorized=False):
     try:
         import autograd

@@ -57,6 +57,13 @@ def as_scalar(y):
     return a.reshape(()).item()
 
 
+def _missing(m: int, dtype) -> np.ndarray:
+    """Placeholders for values not computed: NaN in the real and the imaginary part,
+    so a failed complex-step point cannot pass for a zero derivative."""
+    fill = complex(np.nan, np.nan) if np.dtype(dtype).kind == "c" else np.nan
+    return np.full(m, fill, dtype=dtype)
+
+
 def _point(base: np.ndarray, where, amount) -> np.ndarray:
     v = base.astype(np.complex128) if isinstance(amount, complex) else base.copy()
     if isinstance(where, (int, np.integer)):
@@ -70,7 +77,7 @@ def _run_serial(cost, layout, base, where, amounts, start, bar):
     """Evaluate requests one by one; returns (values, failures, interrupted)."""
     m = len(amounts)
     dtype = np.complex128 if any(isinstance(a, complex) for a in amounts[:1]) else np.float64
-    values = np.full(m, np.nan, dtype=dtype)
+    values = _missing(m, dtype)
     failures = {}
     is_complex = dtype == np.complex128
     for k in range(m):
@@ -99,7 +106,7 @@ def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar):
     is_complex = bool(m) and isinstance(amounts[0], complex)
     row_bytes = base.size * (16 if is_complex else 8)
     per_batch = max(1, int(chunk_bytes // max(row_bytes, 1)))
-    values = np.full(m, np.nan, dtype=np.complex128 if is_complex else np.float64)
+    values = _missing(m, np.complex128 if is_complex else np.float64)
     failures = {}
     for lo in range(0, m, per_batch):
         hi = min(m, lo + per_batch)
@@ -157,7 +164,7 @@ def _run_executor(cost, layout, base, where, amounts, executor, bar):
         for fut in futures:
             fut.cancel()
         done = np.concatenate(pieces) if pieces else np.empty(0)
-        values = np.full(m, np.nan, dtype=np.result_type(done.dtype, np.float64))
+        values = _missing(m, np.result_type(done.dtype, np.float64))
         values[:done.size] = done
         return values, failures, True
     values = np.concatenate(pieces) if pieces else np.empty(0)
@@ -228,13 +235,18 @@ class CostRunner:
             raise CheckInputError(f"cost returned {value} {label}; expected a finite number")
         return value, after
 
-    def modified_input(self, after) -> bool:
-        """Did the last base call change the arrays it was given?"""
+    def changed_leaves(self, after) -> list:
+        """Names of the parameters that the last base call changed in place."""
         try:
-            now = flatten(after)[0]  # a batch of one flattens to the same n values
+            now, layout = flatten(after)  # a batch of one flattens to the same n values
         except Exception:  # noqa: BLE001 - a changed structure is a change too
-            return True
-        return now.shape != self.base.shape or not np.array_equal(now, self.base, equal_nan=True)
+            return ["the structure of params"]
+        if now.shape != self.base.shape:
+            return ["the structure of params"]
+        return [leaf.name for leaf in self.layout.leaves
+                if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
+                                      self.base[leaf.offset:leaf.offset + leaf.size],
+                                      equal_nan=True)]
 
     def _bar(self, m, label):
         show = self.progress

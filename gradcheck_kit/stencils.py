@@ -45,10 +45,22 @@ class Estimates:
     rounding: np.ndarray     # estimated rounding error (from eps_f * |f| / h)
     curvature: np.ndarray    # |f2| (second derivative) from the symmetric points; else 0
     gap: np.ndarray = None   # distance to the embedded lower-order value (five-point, richardson)
+    noise: np.ndarray = None  # absolute noise of one cost value at this coordinate's points
+
+    FIELDS = ("derivative", "truncation", "rounding", "curvature", "gap", "noise")
 
     @property
     def error(self) -> np.ndarray:
         return self.truncation + self.rounding
+
+    def take(self, idx) -> "Estimates":
+        """The estimates of the coordinates at positions idx."""
+        return Estimates(*(getattr(self, f)[idx] for f in self.FIELDS))
+
+    def put(self, idx, other: "Estimates") -> None:
+        """Overwrite positions idx with `other` (aligned with idx)."""
+        for f in self.FIELDS:
+            getattr(self, f)[idx] = getattr(other, f)
 
 
 def scale_of(x: np.ndarray) -> np.ndarray:
@@ -82,6 +94,14 @@ def combine(method: str, values: np.ndarray, f0: float, h: np.ndarray, eps_f,
     f = values
     fmax = np.max(np.abs(f.real), axis=1, initial=abs(f0)) if f.size else np.zeros(0)
     noise = np.maximum(eps_f * fmax, noise_level)
+    est = _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint)
+    if est.gap is None:
+        est.gap = np.zeros(len(h))
+    est.noise = noise
+    return est
+
+
+def _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint) -> Estimates:
     zero = np.zeros(len(h))
     if method == "complex-step":
         d = f[:, 0].imag / h
@@ -172,9 +192,6 @@ def complex_probe_agrees(fc, real_values, f0: float, hc: float, t: float, eps_f:
     return True, ""
 
 
-def directional_curvature(real_values, f0: float, t: float) -> float:
-    """|v' H v| from f(x + t v) and f(x - t v)."""
-    return abs(float(np.real(real_values[0])) - 2 * f0 + float(np.real(real_values[1]))) / t ** 2
 
 
 # Noise: the difference-table method of More & Wild, "Estimating computational noise",
@@ -182,18 +199,78 @@ def directional_curvature(real_values, f0: float, t: float) -> float:
 # with spacing t the k-th differences of a smooth function shrink like t^k, while
 # those of noise of size s keep a spread of about s * sqrt((2k)! / (k!)^2).
 NOISE_POINTS = 9          # f at x + j t v for j = -4..4 (the centre is f0)
-NOISE_SPACING = 2.0 ** -20  # t (about 1e-6) relative to the coordinate scales
+NOISE_SPACING = 2.0 ** -20  # t (about 1e-6) relative to the coordinate scales, in float64
+
+
+def noise_spacing(eps: float) -> float:
+    """The line's spacing for values of precision eps: smooth third differences, about
+    t^3 |f3|, must stay below the noise, so t grows like eps^(1/3) (2^-11 for float32)."""
+    return float(NOISE_SPACING * power_of_two((eps / np.finfo(np.float64).eps) ** (1 / 3)))
+
+
+@dataclass
+class LineFeatures:
+    """What the noise line shows besides noise, for stencils that see little themselves."""
+    noise: float           # absolute noise of one value
+    order: int             # difference order the noise came from
+    curvature_s2: float    # typical |f2| * scale^2
+    slope: float           # largest |f - f0| / distance
+    third: float           # largest |third difference| / t^3
+    values: np.ndarray
+    spacing: float = NOISE_SPACING
+
+    @staticmethod
+    def none() -> "LineFeatures":
+        return LineFeatures(0.0, 0, 0.0, 0.0, 0.0, np.zeros(0))
+
+
+def line_features(values, t: float, spread: float) -> LineFeatures:
+    """Noise, typical curvature, slope and third derivative from equally spaced values.
+
+    `spread` is sum((v_i / scale_i)^2) of the line's direction v, which turns the
+    curvature along v into a typical per-coordinate |f2| * scale^2.  What the noise
+    alone could produce is taken off each difference first (their noise is about
+    2.5, 1.5 and 4.5 times the noise of one value), so a float32 cost's quantized
+    values do not pass for curvature.
+    """
+    f = np.asarray(values, dtype=float)
+    mid, half = len(f) // 2, (len(f) // 2) * t
+    noise, order = noise_from_values(f)
+    second = max(0.0, abs(f[-1] - 2 * f[mid] + f[0]) - 4 * noise)
+    slope = max(0.0, float(np.max(np.abs(f - f[mid]))) - 3 * noise)
+    third = max(0.0, float(np.max(np.abs(np.diff(f, 3)))) - 8 * noise)
+    return LineFeatures(noise, order, second / half ** 2 / spread, slope / half, third / t ** 3, f,
+                        t)
 
 
 def noise_from_values(values) -> tuple:
     """(noise level, order used) from equally spaced cost values along a line.
 
-    sigma_k = sqrt(gamma_k * mean((Delta^k f)^2)), gamma_k = (k!)^2 / (2k)!.
+    A kink on the line (|x| at 0, a ReLU at its hinge) puts one spike into the
+    second differences that would pass for noise; then only the points on the
+    longer side of the kink, which include it as an end point, are used.
+    """
+    f = np.asarray(values, dtype=float)
+    second = np.abs(np.diff(f, 2))
+    if second.size >= 3:
+        k = int(np.argmax(second))
+        rest = np.delete(second, k)
+        if second[k] > 10 * max(float(np.median(rest)), 1e-300) and \
+                second[k] > 10 * np.finfo(float).eps * float(np.max(np.abs(f))):
+            p = k + 1                      # the point nearest the kink
+            side = f[:p + 1] if p + 1 >= len(f) - p else f[p:]
+            if len(side) >= 4:
+                return _difference_table_noise(side)
+    return _difference_table_noise(f)
+
+
+def _difference_table_noise(f) -> tuple:
+    """sigma_k = sqrt(gamma_k * mean((Delta^k f)^2)), gamma_k = (k!)^2 / (2k)!.
+
     The level is the first sigma_k (k >= 2) that agrees within a factor 4 with
     the next one, where the k-th differences change sign (so they are noise,
     not a smooth trend).  Returns (0.0, 0) when every difference vanishes.
     """
-    f = np.asarray(values, dtype=float)
     diffs, sigmas = f, []
     for k in range(1, len(f) - 1):
         diffs = np.diff(diffs)
@@ -206,5 +283,53 @@ def noise_from_values(values) -> tuple:
         if k >= 2 and changes and s > 0 and s_next > 0 and 0.25 <= s / s_next <= 4:
             return s, k
     # No consistent order: the smallest spread seen bounds the noise from above.
-    k, s, _ = min((item for item in sigmas if item[0] >= 2), key=lambda item: item[1])
+    candidates = [item for item in sigmas if item[0] >= 2] or sigmas
+    k, s, _ = min(candidates, key=lambda item: item[1])
     return s, k
+
+
+@dataclass
+class Kinks:
+    found: np.ndarray        # a kink lies within the stencil of this coordinate
+    low: np.ndarray          # smaller one-sided slope at the shorter step
+    high: np.ndarray         # larger one-sided slope
+
+
+def one_sided_levels(method: str, values: np.ndarray, f0: float, h: np.ndarray):
+    """One-sided slope differences at two steps, (near, far), or None for one level.
+
+    Returns (d_plus_near, d_minus_near, jump_near, jump_far): the forward and
+    backward slopes at the shorter step and the jumps D+ - D- at both steps.
+    """
+    f = values.real
+    if method == "richardson":       # offsets 1, -1, 1/2, -1/2
+        near, far, hn, hf = (2, 3), (0, 1), h / 2, h
+    elif method == "five-point":     # offsets 1, -1, 2, -2
+        near, far, hn, hf = (0, 1), (2, 3), h, 2 * h
+    else:
+        return None
+    dp = (f[:, near[0]] - f0) / hn
+    dm = (f0 - f[:, near[1]]) / hn
+    jump_far = (f[:, far[0]] - f0) / hf - (f0 - f[:, far[1]]) / hf
+    return dp, dm, dp - dm, jump_far
+
+
+def find_kinks(method: str, values: np.ndarray, f0: float, h: np.ndarray,
+               noise: np.ndarray) -> Kinks:
+    """Kinks: where the one-sided slopes differ by more than smoothness allows.
+
+    For a smooth cost the jump D+ - D- equals h * f2, so halving the step halves it;
+    across a kink it stays (about) the same.  A kink is reported where the jump at
+    the shorter step is at least 3/4 of the jump at the longer one and well above
+    the rounding of the one-sided slopes (20 noise / step).
+    """
+    n = len(h)
+    levels = one_sided_levels(method, values, f0, h)
+    if levels is None:
+        zero = np.zeros(n)
+        return Kinks(np.zeros(n, dtype=bool), zero, zero)
+    dp, dm, jump_near, jump_far = levels
+    step_near = h / 2 if method == "richardson" else h
+    above_noise = np.abs(jump_near) > 20 * noise / step_near
+    kink = above_noise & (np.abs(jump_near) >= 0.75 * np.abs(jump_far))
+    return Kinks(kink, np.minimum(dp, dm), np.maximum(dp, dm))

@@ -13,7 +13,8 @@ import autograd
 import autograd.numpy as anp
 import numpy as np
 
-from gradcheck_kit.tree import _assemble, flatten, flatten_like, rebuild
+from gradcheck_kit.analytic import traced_rebuild
+from gradcheck_kit.tree import flatten, flatten_like, rebuild
 import mgh_problems
 import ml_losses
 
@@ -49,19 +50,10 @@ def correct_cases(seeds=range(4)):
 
 def _term_matrix(per_sample, params, layout):
     """Per-sample contributions to each flat gradient coordinate: shape (samples, n)."""
-    jac = autograd.jacobian(lambda v: per_sample(rebuild_ag(v, layout)))
+    jac = autograd.jacobian(lambda v: per_sample(traced_rebuild(v, layout)))
     base, _ = flatten(params)
     J = np.asarray(jac(base))
     return J / J.shape[0]
-
-
-def rebuild_ag(v, layout):
-    """rebuild() for autograd-traced vectors: slices and reshapes only."""
-    leaves = []
-    for leaf in layout.leaves:
-        seg = v[leaf.offset:leaf.offset + leaf.size]
-        leaves.append(anp.reshape(seg, leaf.shape) if leaf.shape else seg[0])
-    return _assemble(layout.skeleton, leaves)
 
 
 def plant(kind, g, rng, terms=None, leaf_spans=()):

@@ -1,12 +1,13 @@
 """Evaluations are counted honestly: the report's count is the number of cost calls,
 and each method spends what it promises (n, 2n, 4n) plus a small constant of probes:
-1 base point, 8 points on the noise line, and 5 for the complex-safety probe of auto."""
+the base point twice (a random cost is caught by the repeat), 8 points on the noise
+line, and 5 for the complex-safety probe of auto."""
 import numpy as np
 import pytest
 
 import gradcheck_kit as gk
 
-PROBES = 1 + 8          # base point, noise line
+PROBES = 2 + 8          # base point twice, noise line
 AUTO_PROBE = 5          # one complex point, four real ones
 
 

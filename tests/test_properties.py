@@ -180,8 +180,9 @@ def test_a_cost_that_edits_its_input_cannot_reach_the_caller():
 def test_numeric_gradient_returns_the_structure_of_params(method):
     params = {"W": np.ones((2, 3), dtype=np.float32), "layers": [np.arange(3.0), 0.5]}
 
-    def cost(p):
-        return np.sum(p["W"] ** 2) + np.sum(p["layers"][0] ** 3) + p["layers"][1] ** 2
+    def cost(p):  # W is stored in float32 but used in float64, so the cost is smooth
+        return np.sum(p["W"].astype(np.result_type(p["W"], np.float64)) ** 2) + np.sum(p["layers"][0] ** 3) + \
+            p["layers"][1] ** 2
 
     g = gk.numeric_gradient(cost, params, method=method)
     assert g["W"].shape == (2, 3) and g["W"].dtype == np.float32
