@@ -72,7 +72,8 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
     scale = stencils.scale_of(base)
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
     line = measure_line(runner, base, scale, f0, max(dtype_eps, float(np.max(leaf_eps(layout)))))
-    eps_f = relative_precision(runner.output_dtype, line.noise, f0)
+    eps_f = relative_precision(runner.output_dtype, line.noise,
+                               float(np.max(np.abs(line.values), initial=abs(f0))))
     noisy = eps_f > NOISY_ABOVE * dtype_eps
     # Steps grow only for costs noisy well beyond rounding (More & Wild, ACM TOMS 38(3),
     # 2012); rounding-level noise enlarged by cancellation only enters the error estimates.
@@ -98,11 +99,12 @@ def precision_notes(output_dtype, layout: Layout) -> list:
     return notes
 
 
-def relative_precision(dtype, noise: float, f0: float) -> float:
-    """eps_f: the dtype's epsilon, or the measured noise relative to |f0| where larger
-    (capped at 1e-3: beyond that no step gives a useful derivative anyway)."""
+def relative_precision(dtype, noise: float, size: float) -> float:
+    """eps_f: the dtype's epsilon, or the measured noise relative to the size of the
+    cost's values near the point, where larger (capped at 1e-3: beyond that no step
+    gives a useful derivative anyway)."""
     eps = float(np.finfo(dtype).eps)
-    relative = noise / abs(f0) if f0 != 0 else 0.0
+    relative = noise / size if size != 0 else 0.0
     return float(min(max(eps, relative), max(eps, 1e-3)))
 
 
@@ -191,7 +193,7 @@ def _one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> N
         done[:] = True
     s = setup.scale[coords]
     est = stencils.combine(method, values, setup.f0, h[coords], setup.eps_f, s, setup.line.noise,
-                           setup.line.curvature_s2 / s ** 2, setup.line.third / s ** 3)
+                           setup.line.curvature_s2 / s ** 2, 8 * setup.line.third / s ** 3)
     return Numeric(coords, h[coords], values, est, failed, details, done, method)
 
 

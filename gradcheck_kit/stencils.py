@@ -120,9 +120,10 @@ def _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint)
     if method == "central":
         # Truncation h^2 |f3| / 6.  Model: the cost varies on a length L, so |f3| ~ |f2| / L,
         # with L the larger of |f1| / |f2| (exact for exponentials) capped below at 64 h,
-        # and the coordinate's scale.
+        # and the coordinate's scale; never below the third derivative seen on the line.
         length = np.clip(np.abs(central) / np.maximum(second, 1e-300), 64 * h, scale)
-        trunc = h ** 2 / 6 * (second / length + np.abs(central) / scale ** 2)
+        f3 = np.maximum(second / length + np.abs(central) / scale ** 2, third_hint)
+        trunc = h ** 2 / 6 * f3
         return Estimates(central, trunc, noise / h, second)
     if method == "five-point":
         d = (8 * (f[:, 0] - f[:, 1]) - (f[:, 2] - f[:, 3])) / (12 * h)
@@ -268,8 +269,9 @@ def _difference_table_noise(f) -> tuple:
     """sigma_k = sqrt(gamma_k * mean((Delta^k f)^2)), gamma_k = (k!)^2 / (2k)!.
 
     The level is the first sigma_k (k >= 2) that agrees within a factor 4 with
-    the next one, where the k-th differences change sign (so they are noise,
-    not a smooth trend).  Returns (0.0, 0) when every difference vanishes.
+    the next two, where the k-th differences change sign (so they are noise,
+    not a smooth trend: a smooth function's differences fall away with the order,
+    noise's do not).  Returns (0.0, 0) when every difference vanishes.
     """
     diffs, sigmas = f, []
     for k in range(1, len(f) - 1):
@@ -279,8 +281,9 @@ def _difference_table_noise(f) -> tuple:
                        bool(np.any(diffs > 0) and np.any(diffs < 0))))
     if all(s == 0 for _, s, _ in sigmas):
         return 0.0, 0
-    for (k, s, changes), (_, s_next, _) in zip(sigmas, sigmas[1:]):
-        if k >= 2 and changes and s > 0 and s_next > 0 and 0.25 <= s / s_next <= 4:
+    for (k, s, changes), (_, s1, _), (_, s2, _) in zip(sigmas, sigmas[1:], sigmas[2:]):
+        if k >= 2 and changes and s > 0 and s1 > 0 and s2 > 0 and \
+                0.25 <= s / s1 <= 4 and 0.25 <= s / s2 <= 4:
             return s, k
     # No consistent order: the smallest spread seen bounds the noise from above.
     candidates = [item for item in sigmas if item[0] >= 2] or sigmas
