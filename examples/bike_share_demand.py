@@ -6,7 +6,8 @@ negative log-likelihood; the hand-written gradient below has a planted bug of a
 kind that is common in practice: its bias entry sums over the hours where the
 cost takes a mean, so it is off by the number of hours.
 
-Run it:   python examples/bike_share_demand.py
+Check it: gradcheck-kit check examples/bike_share_demand.py     (exits 1: the bug is found)
+Or:       python examples/bike_share_demand.py
 """
 import numpy as np
 
@@ -39,6 +40,9 @@ def demand_gradient(params):
 
 
 START = {"weights": np.array([0.5, -0.5, 0.2, 0.1]), "bias": 1.0}
+
+# Declared for `gradcheck-kit check` and for the pytest plugin.
+gk.case(gradient=demand_gradient, params=START)(demand_cost)
 
 if __name__ == "__main__":
     report = gk.compare_gradient(demand_cost, START, demand_gradient)

@@ -4,6 +4,7 @@ The pipeline, one module per stage (see DEVELOPERS.md):
 tree -> plan -> evaluate -> stencils -> verdicts -> report -> front ends.
 """
 from .assertions import assert_gradient_matches
+from .cases import case
 from .errors import CheckInputError, GradientMismatchError
 from .jacobian import compare_jacobian
 from .pipeline import NoiseEstimate, compare_gradient, estimate_noise, numeric_gradient
@@ -14,6 +15,6 @@ __version__ = "0.1.0"
 
 __all__ = [
     "numeric_gradient", "compare_gradient", "assert_gradient_matches", "compare_jacobian",
-    "taylor_test", "estimate_noise", "TaylorResult", "NoiseEstimate",
+    "taylor_test", "estimate_noise", "TaylorResult", "NoiseEstimate", "case",
     "GradientReport", "Row", "GradientMismatchError", "CheckInputError",
 ]

@@ -376,7 +376,9 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
     comp = compare(setup, numeric, analytic, rtol, atol)
     if method == "auto":
         comp = second_opinion(setup, comp, rtol, atol)
-    return finish(setup, comp, used)
+    report = finish(setup, comp, used)
+    report.source = Source(setup, analytic, h, used)
+    return report
 
 
 def finish(setup: Setup, comp: Comparison, method: str, title="gradient check"):
@@ -427,3 +429,30 @@ class NoiseEstimate:
     values: np.ndarray    # the cost values along the line
     spacing: float        # the line's spacing, relative to each coordinate's scale
     evaluations: int
+
+
+class Source:
+    """The cost behind a report, kept so figures can ask for more evaluations later."""
+
+    def __init__(self, setup: Setup, analytic: np.ndarray, h: np.ndarray, method: str):
+        self.setup, self.analytic, self.h, self.method = setup, analytic, h, method
+
+    def step_sweep(self, flat_index: int, steps=None) -> dict:
+        """Central differences of one coordinate over a wide range of steps (2 per step)."""
+        s = float(self.setup.scale[flat_index])
+        steps = s * 2.0 ** -np.arange(1, 46) if steps is None else np.asarray(steps)
+        where, amounts = [], []
+        for h in steps:
+            where += [flat_index, flat_index]
+            amounts += [float(h), -float(h)]
+        run = self.setup.runner.run(where, amounts, label="step sweep")
+        v = run.values.real.reshape(-1, 2)
+        chosen = self.h if self.method != "complex-step" else stencils.default_steps(
+            "central", self.setup.base, self.setup.eps)
+        return {"steps": steps, "derivatives": (v[:, 0] - v[:, 1]) / (2 * steps),
+                "chosen_step": float(chosen[flat_index]),
+                "analytic": float(self.analytic[flat_index])}
+
+    def taylor(self, seed=None):
+        from .taylor import taylor_from_setup
+        return taylor_from_setup(self.setup, self.analytic, seed)

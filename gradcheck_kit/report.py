@@ -70,6 +70,9 @@ class GradientReport:
     interrupted: bool = False
     title: str = "gradient check"
     extra: dict = field(default_factory=dict)
+    # The cost behind the report (pipeline.Source), for figures that need more
+    # evaluations; not part of the JSON.
+    source: object = field(default=None, repr=False, compare=False)
 
     @property
     def passed(self) -> bool:

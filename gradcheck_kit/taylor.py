@@ -66,8 +66,13 @@ def fit_order(steps, remainders, floor) -> tuple:
 
 
 def taylor_test(cost, params, gradient=None, *, seed=None) -> TaylorResult:
+    """Fit the order of the first-order Taylor remainder along one random direction."""
     setup = prepare(cost, params, repeat=False)
     g = analytic_vector(cost, setup.base, setup.layout, gradient)
+    return taylor_from_setup(setup, g, seed)
+
+
+def taylor_from_setup(setup, g, seed=None) -> TaylorResult:
     rng = np.random.default_rng(seed)
     z = rng.standard_normal(setup.base.size)
     v = z * setup.scale / np.max(np.abs(z))

@@ -1,0 +1,164 @@
+"""Every exit path of `gradcheck-kit check`."""
+import json
+import subprocess
+import sys
+import textwrap
+
+import numpy as np
+import pytest
+
+from gradcheck_kit.cli import main
+
+GOOD = textwrap.dedent("""
+    import numpy as np
+    import gradcheck_kit as gk
+
+    P = {"W": np.linspace(0.2, 1.0, 6).reshape(2, 3), "b": np.array([0.5, -1.0, 2.0])}
+
+    def loss(p):
+        return np.sum(np.sin(p["W"]) ** 2) + np.sum(p["b"] ** 2)
+
+    def loss_grad(p):
+        return {"W": np.sin(2 * p["W"]), "b": 2 * p["b"]}
+
+    gk.case(gradient=loss_grad, params=P)(loss)
+
+    def fixed_grad(p):  # a gradient with hard-wired shapes
+        return {"W": np.zeros((2, 3)), "b": np.zeros(3)}
+""")
+
+BAD = GOOD + textwrap.dedent("""
+    def bad_grad(p):
+        g = loss_grad(p)
+        g["b"] = g["b"] * np.array([1.0, 1.2, 1.0])
+        return g
+
+    @gk.case(gradient=bad_grad, params=P)
+    def bad_loss(p):
+        return loss(p)
+""")
+
+
+@pytest.fixture
+def files(tmp_path):
+    (tmp_path / "good_mod.py").write_text(GOOD)
+    (tmp_path / "bad_mod.py").write_text(BAD)
+    (tmp_path / "broken_mod.py").write_text("import numpy\nx = 1 / 0\n")
+    (tmp_path / "empty_mod.py").write_text("X = 1\n")
+    np.savez(tmp_path / "p.npz", W=np.linspace(0.2, 1.0, 6).reshape(2, 3),
+             b=np.array([0.5, -1.0, 2.0]))
+    np.savez(tmp_path / "wrong_shape.npz", W=np.zeros((3, 2)), b=np.zeros(3))
+    np.save(tmp_path / "pickled.npy", np.array([{"W": 1}], dtype=object), allow_pickle=True)
+    (tmp_path / "p.txt").write_text("1 2 3")
+    return tmp_path
+
+
+def run(capsys, *args):
+    code = main(["check", *map(str, args)])
+    out = capsys.readouterr()
+    assert "Traceback" not in out.err + out.out
+    return code, out.out, out.err
+
+
+def test_right_module_exits_0(files, capsys):
+    code, out, _ = run(capsys, files / "good_mod.py")
+    assert code == 0 and "PASS" in out
+
+
+def test_wrong_dict_entry_exits_1_and_names_it(files, capsys):
+    code, out, _ = run(capsys, files / "bad_mod.py")
+    assert code == 1 and "b[1]" in out and "disagree" in out
+
+
+def test_json_is_written_and_readable(files, capsys):
+    target = files / "out.json"
+    code, _, _ = run(capsys, files / "bad_mod.py", "--json", target)
+    data = json.loads(target.read_text())
+    assert code == 1 and data["schema"] == "gradcheck_kit/check-run"
+    assert {c["case"]: c["passed"] for c in data["checks"]} == {"loss": True, "bad_loss": False}
+
+
+def test_cost_gradient_params_form(files, capsys):
+    code, out, _ = run(capsys, f"{files / 'good_mod.py'}:loss", "--gradient",
+                       f"{files / 'good_mod.py'}:loss_grad", "--params", files / "p.npz",
+                       "--json", files / "one.json")
+    assert code == 0
+    assert json.loads((files / "one.json").read_text())["schema"] == \
+        "gradcheck_kit/gradient-report"
+    code, out, _ = run(capsys, f"{files / 'bad_mod.py'}:loss", "--gradient",
+                       f"{files / 'bad_mod.py'}:bad_grad", "--params", files / "p.npz")
+    assert code == 1 and "b[1]" in out
+
+
+def test_autograd_when_gradient_is_left_out(files, capsys):
+    (files / "ag_mod.py").write_text("import autograd.numpy as np\n"
+                                     "def cost(p):\n    return np.sum(np.tanh(p['W'])) + "
+                                     "np.sum(p['b'] ** 3)\n")
+    code, out, _ = run(capsys, f"{files / 'ag_mod.py'}:cost", "--params", files / "p.npz")
+    assert code == 0, out
+
+
+@pytest.mark.parametrize("args, words", [
+    (["missing_mod.py"], "no such file"),
+    (["broken_mod.py"], "ZeroDivisionError: division by zero (broken_mod.py, line 2)"),
+    (["empty_mod.py"], "declares no gradient cases"),
+    (["good_mod.py:nothing"], "has no name 'nothing'"),
+    (["good_mod.py:loss", "--params", "pickled.npy"], "pickled"),
+    (["good_mod.py:loss", "--params", "absent.npz"], "no such file"),
+    (["good_mod.py:loss", "--params", "p.txt"], ".npz or .npy"),
+    (["good_mod.py:loss", "--gradient", "good_mod.py:fixed_grad", "--params", "wrong_shape.npz"],
+     "expected shape (3, 2), got (2, 3)"),
+    (["good_mod.py", "--params", "p.npz"], "FILE_OR_MODULE:COST"),
+    (["good_mod.py:loss", "--gradient", "good_mod.py"], "FILE_OR_MODULE:NAME"),
+    (["good_mod.py:P"], "not a function"),
+    (["no.such.module"], "no module named"),
+    (["good_mod.py", "--workers", "0"], "--workers"),
+])
+def test_bad_input_exits_2_with_one_message(files, capsys, monkeypatch, args, words):
+    monkeypatch.chdir(files)
+    code, out, err = run(capsys, *args)
+    assert code == 2 and words in err, err
+    assert err.startswith("gradcheck-kit: error:") and err.count("\n") == 1
+
+
+def test_usage_errors_exit_2(capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["check", "x.py", "--method", "secant"])
+    assert info.value.code == 2
+    with pytest.raises(SystemExit) as info:
+        main([])
+    assert info.value.code == 2
+
+
+def test_quiet_prints_one_line_per_check(files, capsys):
+    code, out, _ = run(capsys, files / "bad_mod.py", "--quiet")
+    lines = out.strip().splitlines()
+    assert code == 1 and len(lines) == 2 and lines[1].startswith("FAIL")
+
+
+def test_process_pool_gives_the_same_verdicts(files, capsys):
+    code, out, _ = run(capsys, files / "bad_mod.py", "--workers", "2", "--quiet",
+                       "--method", "central")
+    code1, out1, _ = run(capsys, files / "bad_mod.py", "--quiet", "--method", "central")
+    assert code == code1 == 1 and out == out1
+
+
+def test_plot_writes_a_figure_per_case(files, capsys):
+    code, _, _ = run(capsys, files / "bad_mod.py", "--plot", files / "fig.png")
+    assert code == 1
+    assert (files / "fig-loss.png").stat().st_size > 10_000
+    assert (files / "fig-bad_loss.png").stat().st_size > 10_000
+
+
+def test_unreachable_scheduler_exits_2(files, capsys):
+    code, _, err = run(capsys, files / "good_mod.py", "--scheduler", "tcp://127.0.0.1:9")
+    assert code == 2 and "--scheduler" in err
+
+
+def test_entry_points_and_help(files):
+    for cmd in (["gradcheck-kit"], [sys.executable, "-m", "gradcheck_kit"]):
+        done = subprocess.run([*cmd, "check", str(files / "bad_mod.py"), "--quiet"],
+                              capture_output=True, text=True)
+        assert done.returncode == 1 and "FAIL" in done.stdout
+    helped = subprocess.run(["gradcheck-kit", "check", "--help"], capture_output=True, text=True)
+    assert helped.returncode == 0 and "runs its code" in helped.stdout
