@@ -351,8 +351,8 @@ def descent_note(setup: Setup, analytic: np.ndarray):
     expected = t * float(np.sum((g * setup.scale) ** 2))
     resolvable = expected > 100 * max(setup.line.noise, setup.eps_f * abs(setup.f0))
     if resolvable and down > 0 and up < 0:
-        return ("a small step against the analytic gradient raises the cost and a step along "
-                "it lowers it: the gradient points uphill, which suggests a sign error")
+        return ("descent: a small step against the analytic gradient raises the cost and a step "
+                "along it lowers it: it points uphill, so gradient descent would climb")
     return None
 
 
