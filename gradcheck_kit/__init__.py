@@ -5,8 +5,9 @@ tree -> plan -> evaluate -> stencils -> verdicts -> report -> front ends.
 """
 from .assertions import assert_gradient_matches
 from .cases import case
-from .errors import CheckInputError, GradientMismatchError
+from .errors import CheckInputError, CheckInterrupted, GradientMismatchError
 from .jacobian import compare_jacobian
+from .locate import locate_mismatches
 from .pipeline import NoiseEstimate, compare_gradient, estimate_noise, numeric_gradient
 from .taylor import TaylorResult, taylor_test
 from .report import GradientReport, Row
@@ -15,6 +16,6 @@ __version__ = "0.1.0"
 
 __all__ = [
     "numeric_gradient", "compare_gradient", "assert_gradient_matches", "compare_jacobian",
-    "taylor_test", "estimate_noise", "TaylorResult", "NoiseEstimate", "case",
-    "GradientReport", "Row", "GradientMismatchError", "CheckInputError",
+    "taylor_test", "estimate_noise", "locate_mismatches", "TaylorResult", "NoiseEstimate", "case",
+    "GradientReport", "Row", "GradientMismatchError", "CheckInputError", "CheckInterrupted",
 ]

@@ -12,20 +12,10 @@ from .errors import CheckInputError
 from .tree import Layout, flatten_like, rebuild
 
 
-def _add_batch_axis(tree):
-    """params -> a batch of one, traced by autograd (for vectorized costs)."""
-    import autograd.numpy as anp
+def traced_rebuild(v, layout: Layout, batched: bool = False):
+    """rebuild() for a vector autograd is tracing: slices and reshapes only.
 
-    if isinstance(tree, dict):
-        return type(tree)((k, _add_batch_axis(v)) for k, v in tree.items())
-    if isinstance(tree, (list, tuple)):
-        items = [_add_batch_axis(v) for v in tree]
-        return type(tree)(*items) if hasattr(tree, "_fields") else type(tree)(items)
-    return anp.reshape(tree, (1,) + anp.shape(tree))
-
-
-def traced_rebuild(v, layout: Layout):
-    """rebuild() for a vector autograd is tracing: slices and reshapes only."""
+    batched=True gives every leaf a leading batch axis of length 1."""
     import autograd.numpy as anp
 
     from .tree import _assemble
@@ -33,21 +23,24 @@ def traced_rebuild(v, layout: Layout):
     leaves = []
     for leaf in layout.leaves:
         seg = v[leaf.offset:leaf.offset + leaf.size]
-        leaves.append(anp.reshape(seg, leaf.shape) if leaf.shape else seg[0])
+        if batched:
+            leaves.append(anp.reshape(seg, (1,) + leaf.shape))
+        else:
+            leaves.append(anp.reshape(seg, leaf.shape) if leaf.shape else seg[0])
     return _assemble(layout.skeleton, leaves)
 
 
-def autograd_gradient(cost, params, vectorized=False):
+def autograd_gradient(cost, params, layout: Layout, base, vectorized=False):
     try:
         import autograd
     except ImportError as exc:  # pragma: no cover - autograd is a core dependency
         raise CheckInputError("gradient=None needs autograd: pip install autograd") from exc
-    if vectorized:
+    if vectorized:  # a batch of one, traced through the flat vector
         import autograd.numpy as anp
 
-        def one(p):
-            return anp.sum(cost(_add_batch_axis(p)))
-        return autograd.grad(one)(params)
+        def one(v):
+            return anp.sum(cost(traced_rebuild(v, layout, batched=True)))
+        return rebuild(autograd.grad(one)(base.copy()), layout)
     return autograd.grad(cost)(params)
 
 
@@ -56,7 +49,7 @@ def analytic_vector(cost, base: np.ndarray, layout: Layout, gradient, vectorized
     params = rebuild(base.copy(), layout)
     if gradient is None:
         try:
-            value = autograd_gradient(cost, params, vectorized)
+            value = autograd_gradient(cost, params, layout, base, vectorized)
         except Exception as exc:
             raise CheckInputError(
                 f"gradient=None: autograd could not differentiate the cost ({type(exc).__name__}: "

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from .cases import CASE_ATTRIBUTE, Case, check_case, declared_cases
-from .errors import CheckInputError
+from .errors import CheckInputError, CheckInterrupted
 from .plan import METHOD_CHOICES
 from .report import write_atomically
 
@@ -229,6 +229,9 @@ def main(argv=None) -> int:
     except (UsageError, CheckInputError) as exc:
         print(f"gradcheck-kit: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    except CheckInterrupted:
+        print("gradcheck-kit: interrupted; the partial report is above", file=sys.stderr)
+        return 130
     return EXIT_USAGE
 
 

@@ -15,3 +15,11 @@ class GradientMismatchError(AssertionError):
     def __init__(self, report):
         super().__init__(report.to_text())
         self.report = report
+
+
+class CheckInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a check: `.report` holds the coordinates finished, marked interrupted."""
+
+    def __init__(self, report):
+        super().__init__("gradient check interrupted")
+        self.report = report

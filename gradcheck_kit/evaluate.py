@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import CheckInputError
-from .tree import Layout, flatten, rebuild
+from .tree import Layout, flatten, rebuild, rebuilder
 
 DEFAULT_CHUNK_BYTES = 256 * 2**20  # memory bound for one batch of a vectorized cost
 PROGRESS_AFTER_SECONDS = 2.0       # show a bar when the run looks longer than this
@@ -47,7 +47,7 @@ class Results:
 
 def as_scalar(y):
     """The cost's value as a Python float or complex; NotScalarError otherwise."""
-    if type(y) is float:
+    if isinstance(y, float):     # float and numpy float64: the common, fast case
         return y
     a = np.asarray(y)
     if a.size != 1:
@@ -66,7 +66,7 @@ def _missing(m: int, dtype) -> np.ndarray:
 
 def _point(base: np.ndarray, where, amount) -> np.ndarray:
     v = base.astype(np.complex128) if isinstance(amount, complex) else base.copy()
-    if isinstance(where, (int, np.integer)):
+    if type(where) is int or isinstance(where, np.integer):
         v[where] += amount
     elif where is not None:
         v += amount * where
@@ -80,9 +80,10 @@ def _run_serial(cost, layout, base, where, amounts, start, bar):
     values = _missing(m, dtype)
     failures = {}
     is_complex = dtype == np.complex128
+    build = rebuilder(layout, complex_values=is_complex)
     for k in range(m):
         try:
-            y = as_scalar(cost(rebuild(_point(base, where[k], amounts[k]), layout)))
+            y = as_scalar(cost(build(_point(base, where[k], amounts[k]))))
             if is_complex and not isinstance(y, complex):
                 raise NotComplexSafeError(NOT_COMPLEX_SAFE)
             values[k] = y
@@ -101,6 +102,19 @@ def _run_chunk(cost, layout, base, where, amounts, start):
     return values, failures
 
 
+def _batch(base, where, amounts, dtype) -> np.ndarray:
+    """The points of a batch as rows; coordinate shifts are set in one vectorized step."""
+    batch = np.empty((len(amounts), base.size), dtype=dtype)
+    batch[:] = base
+    coords = [k for k, w in enumerate(where) if type(w) is int or isinstance(w, np.integer)]
+    if len(coords) == len(where):
+        batch[np.arange(len(where)), np.asarray(where, dtype=int)] += np.asarray(amounts)
+        return batch
+    for k, w in enumerate(where):
+        batch[k] = _point(base, w, amounts[k])
+    return batch
+
+
 def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar):
     m = len(amounts)
     is_complex = bool(m) and isinstance(amounts[0], complex)
@@ -110,9 +124,7 @@ def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar):
     failures = {}
     for lo in range(0, m, per_batch):
         hi = min(m, lo + per_batch)
-        batch = np.empty((hi - lo, base.size), dtype=values.dtype)
-        for r, k in enumerate(range(lo, hi)):
-            batch[r] = _point(base, where[k], amounts[k])
+        batch = _batch(base, where[lo:hi], amounts[lo:hi], values.dtype)
         try:
             out = np.asarray(cost(rebuild(batch, layout, batched=True)))
             if out.shape not in ((hi - lo,), (hi - lo, 1)):

@@ -6,6 +6,7 @@ its own beyond choosing what to evaluate next.
 """
 from __future__ import annotations
 
+import sys
 import warnings
 from dataclasses import dataclass, field
 
@@ -13,7 +14,7 @@ import numpy as np
 
 from . import plan, stencils, verdicts
 from .analytic import analytic_vector
-from .errors import CheckInputError
+from .errors import CheckInputError, CheckInterrupted
 from .evaluate import CostRunner
 from .report import GradientReport, Row
 from .tree import Layout, coordinate_name, flatten, leaf_eps, locate, rebuild
@@ -378,6 +379,10 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
         comp = second_opinion(setup, comp, rtol, atol)
     report = finish(setup, comp, used)
     report.source = Source(setup, analytic, h, used)
+    if report.interrupted:
+        # Ctrl-C: show what was finished, then let the interrupt go on
+        print(report.to_text(), file=sys.stderr)
+        raise CheckInterrupted(report)
     return report
 
 
@@ -401,7 +406,7 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check"):
         notes.append(f"{len(noisy)} coordinates could not be decided: the cost's noise "
                      f"(about {setup.line.noise:.2g}) swamps their derivative at every step: "
                      f"{', '.join(noisy[:5])}" + (" ..." if len(noisy) > 5 else ""))
-    if any(r.failing for r in rows):
+    if any(r.failing for r in rows) and not setup.runner.interrupted:
         note = descent_note(setup, comp.analytic)
         if note:
             hints.append(note)

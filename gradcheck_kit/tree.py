@@ -189,6 +189,19 @@ def rebuild(vector: np.ndarray, layout: Layout, batched: bool = False) -> Any:
     return _assemble(layout.skeleton, values)
 
 
+def rebuilder(layout: Layout, complex_values: bool = False):
+    """A function vector -> params for one layout, the hot path of serial evaluation.
+
+    A bare float64 array parameter, the commonest case, is a reshape and nothing more.
+    """
+    if not complex_values and layout.skeleton[0] == "leaf":
+        leaf = layout.leaves[0]
+        if leaf.kind == "array" and leaf.dtype == np.float64:
+            shape = leaf.shape
+            return lambda vector: vector.reshape(shape)
+    return lambda vector: rebuild(vector, layout)
+
+
 def _assemble(skeleton, values):
     if skeleton[0] == "leaf":
         return values[skeleton[1]]
