@@ -76,7 +76,7 @@ def _point(base: np.ndarray, where, amount) -> np.ndarray:
 def _run_serial(cost, layout, base, where, amounts, start, bar):
     """Evaluate requests one by one; returns (values, failures, interrupted)."""
     m = len(amounts)
-    dtype = np.complex128 if any(isinstance(a, complex) for a in amounts[:1]) else np.float64
+    dtype = np.complex128 if m and isinstance(amounts[0], complex) else np.float64
     values = _missing(m, dtype)
     failures = {}
     is_complex = dtype == np.complex128
@@ -187,13 +187,14 @@ class CostRunner:
     """Calls one cost near one base point and counts every evaluation honestly."""
 
     def __init__(self, cost, layout: Layout, base: np.ndarray, *, vectorized=False,
-                 executor=None, chunk_bytes=DEFAULT_CHUNK_BYTES, progress=None):
+                 executor=None, chunk_bytes=None, progress=None):
         if executor is not None and not isinstance(executor, Executor) and \
                 not hasattr(executor, "submit"):
             raise CheckInputError(
                 f"executor: expected a concurrent.futures.Executor, got {type(executor).__name__}")
         self.cost, self.layout, self.base = cost, layout, base
         self.vectorized, self.executor = vectorized, executor
+        # read at run time, so setting evaluate.DEFAULT_CHUNK_BYTES changes the bound
         self.chunk_bytes, self.progress = chunk_bytes, progress
         self.evaluations = 0
         self.output_dtype = np.dtype(np.float64)
@@ -203,8 +204,7 @@ class CostRunner:
             _check_picklable(cost, executor)
 
     def call_once(self, vector: np.ndarray):
-        """One plain call at `vector` (not batched); returns (value, params after the call)."""
-        params = rebuild(vector.copy(), self.layout)
+        """One call at `vector` (a batch of one if vectorized); returns (value, params after)."""
         if self.vectorized:
             batch = rebuild(vector.copy()[None, :], self.layout, batched=True)
             t0 = time.perf_counter()
@@ -217,6 +217,7 @@ class CostRunner:
                     "expected (1,): one value per batch row")
             self._note_dtype(out)
             return out.reshape(()).item(), batch
+        params = rebuild(vector.copy(), self.layout)
         t0 = time.perf_counter()
         y = self.cost(params)
         self.seconds_per_call = time.perf_counter() - t0
@@ -279,7 +280,8 @@ class CostRunner:
         try:
             if self.vectorized:
                 values, failures, stopped = _run_vectorized(
-                    self.cost, self.layout, self.base, where, amounts, self.chunk_bytes, bar)
+                    self.cost, self.layout, self.base, where, amounts,
+                    self.chunk_bytes or DEFAULT_CHUNK_BYTES, bar)
             elif self.executor is not None:
                 values, failures, stopped = _run_executor(
                     self.cost, self.layout, self.base, where, amounts, self.executor, bar)

@@ -15,7 +15,7 @@ from . import verdicts
 from .errors import CheckInputError
 from .pipeline import compare_gradient
 from .report import GradientReport, Row
-from .tree import coordinate_name, flatten, rebuild
+from .tree import coordinate_name, flatten, leaves_of, rebuild
 
 
 class _OutputCache:
@@ -37,12 +37,12 @@ class _OutputCache:
 
 
 def _point_key(params):
-    point = np.concatenate([np.ravel(np.asarray(x)) for x in _leaves(params)])
+    point = np.concatenate([np.ravel(np.asarray(x)) for x in leaves_of(params)])
     return (point.dtype.str, point.tobytes()), point
 
 
 def _flat_output(out):
-    return np.concatenate([np.ravel(np.asarray(x)) for x in _leaves(out)])
+    return np.concatenate([np.ravel(np.asarray(x)) for x in leaves_of(out)])
 
 
 def _output_names(out) -> list:
@@ -77,7 +77,7 @@ def _analytic_jacobian(fun, params, jacobian, m, n, allowed_shapes):
             import autograd.numpy as anp
             out = fun(traced_rebuild(v, layout))
             if isinstance(out, (dict, list, tuple)):
-                return anp.concatenate([anp.ravel(x) for x in _leaves(out)])
+                return anp.concatenate([anp.ravel(x) for x in leaves_of(out)])
             return anp.ravel(out)
         try:
             J = autograd.jacobian(flat_fun)(base)
@@ -97,14 +97,6 @@ def _analytic_jacobian(fun, params, jacobian, m, n, allowed_shapes):
         raise CheckInputError(f"jacobian: expected shape ({m}, {n}): {m} x {n} entries, outputs "
                               f"by inputs, flattened, got shape {J.shape}")
     return J.reshape(m, n)
-
-
-def _leaves(t):
-    if isinstance(t, dict):
-        return [x for v in t.values() for x in _leaves(v)]
-    if isinstance(t, (list, tuple)):
-        return [x for v in t for x in _leaves(v)]
-    return [t]
 
 
 def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:

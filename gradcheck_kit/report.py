@@ -89,8 +89,8 @@ class GradientReport:
 
     @property
     def worst_rel_error(self):
-        finite = [r.rel_error for r in self.rows]
-        return max(finite) if finite else None
+        errors = [r.rel_error for r in self.rows]
+        return max(errors) if errors else None
 
     def parameters(self) -> list:
         by = {}

@@ -217,6 +217,15 @@ def _assemble(skeleton, values):
     return kind_type(built)
 
 
+def leaves_of(tree) -> list:
+    """The leaves of any dict / list / tuple nest, depth first (no checks)."""
+    if isinstance(tree, dict):
+        return [x for v in tree.values() for x in leaves_of(v)]
+    if isinstance(tree, (list, tuple)):
+        return [x for v in tree for x in leaves_of(v)]
+    return [tree]
+
+
 def locate(layout: Layout, flat_index: int) -> tuple:
     """(leaf, index tuple within the leaf) of a flat position."""
     starts = layout.starts

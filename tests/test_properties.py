@@ -10,6 +10,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 import gradcheck_kit as gk
+from gradcheck_kit.tree import leaves_of
 from test_tree import same_tree, trees
 
 # Methods whose error estimate is measured (an embedded lower-order value, or the complex
@@ -148,17 +149,9 @@ def test_complex_step_needs_no_step_tuning_where_central_breaks_down():
 # --- the caller's data is never changed ---------------------------------------------------------
 def square_cost(tree):
     total = 0.0
-    for leaf in _leaves(tree):
+    for leaf in leaves_of(tree):
         total = total + np.sum(np.asarray(leaf, dtype=float) ** 2)
     return total
-
-
-def _leaves(tree):
-    if isinstance(tree, dict):
-        return [x for v in tree.values() for x in _leaves(v)]
-    if isinstance(tree, (list, tuple)):
-        return [x for v in tree for x in _leaves(v)]
-    return [tree]
 
 
 @given(trees, st.sampled_from(["auto", "central", "richardson"]))

@@ -6,7 +6,7 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 from gradcheck_kit import CheckInputError
-from gradcheck_kit.tree import coordinate_name, flatten, flatten_like, rebuild
+from gradcheck_kit.tree import coordinate_name, flatten, flatten_like, leaves_of, rebuild
 
 float_dtypes = st.sampled_from([np.float16, np.float32, np.float64])
 arrays = float_dtypes.flatmap(lambda dt: hnp.arrays(
@@ -52,17 +52,9 @@ def test_flatten_does_not_change_the_tree(tree):
 def test_rebuilt_leaves_are_fresh_arrays(tree):
     vector, layout = flatten(tree)
     rebuilt = rebuild(vector.copy(), layout)
-    for leaf_in, leaf_out in zip(_leaves(tree), _leaves(rebuilt)):
+    for leaf_in, leaf_out in zip(leaves_of(tree), leaves_of(rebuilt)):
         if isinstance(leaf_in, np.ndarray):
             assert not np.shares_memory(leaf_in, leaf_out)
-
-
-def _leaves(tree):
-    if isinstance(tree, dict):
-        return [x for v in tree.values() for x in _leaves(v)]
-    if isinstance(tree, (list, tuple)):
-        return [x for v in tree for x in _leaves(v)]
-    return [tree]
 
 
 def test_coordinate_names_are_readable():
