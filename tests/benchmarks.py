@@ -61,19 +61,19 @@ def layered_batched(w):
     return np.sum(a[..., 0] ** 2, axis=1)
 
 
-# A least-squares loss on 256 data rows: a batch turns matrix-vector into matrix-matrix work.
-DATA = RNG.normal(size=(256, N)) / np.sqrt(N)
-TARGET = RNG.normal(size=256)
+# Least-squares losses on data rows: a batch turns matrix-vector into matrix-matrix work.
+def least_squares(rows):
+    data = RNG.normal(size=(rows, N)) / np.sqrt(N)
+    target = RNG.normal(size=rows)
 
+    def one(w):
+        r = data @ w - target
+        return float(r @ r)
 
-def data_cost(w):
-    r = DATA @ w - TARGET
-    return float(r @ r)
-
-
-def data_batched(w):
-    r = w @ DATA.T - TARGET
-    return np.einsum("ij,ij->i", r, r)
+    def batch(w):
+        r = w @ data.T - target
+        return np.einsum("ij,ij->i", r, r)
+    return one, batch
 
 
 def bare_loop(cost, x0, h=2.0 ** -19):
@@ -100,9 +100,11 @@ def overhead():
           f"ratio tool/loop = {tool / loop:.2f}  (target <= 1.3; largest difference "
           f"{close:.1e})")
     print(f"[vectorized] n={N}, the same {2 * N} points in batches, against the bare loop")
-    for name, one, batch, x in (("w . cos x", cheap_cost, cheap_batched, X0),
-                                ("20-layer tanh model", layered_cost, layered_batched, X_LAYERED),
-                                ("least squares, 256 rows", data_cost, data_batched, X0)):
+    cases = [("w . cos x", cheap_cost, cheap_batched, X0),
+             ("20-layer tanh model", layered_cost, layered_batched, X_LAYERED)]
+    for rows in (256, 1024):
+        cases.append((f"least squares, {rows} rows", *least_squares(rows), X0))
+    for name, one, batch, x in cases:
         loop = best_of(lambda: bare_loop(one, x), 3)
         batched = best_of(lambda: gk.numeric_gradient(batch, x, method="central",
                                                       vectorized=True), 3)
