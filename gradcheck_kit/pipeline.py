@@ -161,8 +161,7 @@ def numeric_derivatives(setup: Setup, method: str, coords: np.ndarray, h: np.nda
     h2[coords[idx]] = stencils.refined_steps(est.take(idx), h[coords[idx]])
     second = _one_pass(setup, method, coords[idx], h2)
     ok = ~second.failed & second.done
-    use, _ = stencils.pick_refined(est.take(idx), second.estimates, terms[idx])
-    use &= ok
+    use = stencils.pick_refined(est.take(idx), second.estimates, terms[idx]) & ok
     first_d = est.derivative[idx].copy()
     est.put(idx[use], second.estimates.take(np.flatnonzero(use)))
     # The chosen value's error: the distance between the two values, or its own modelled

@@ -163,11 +163,9 @@ def extrapolation_error(est: Estimates, terms: np.ndarray) -> np.ndarray:
     return 8 * est.gap ** 2 / np.maximum(size, 1e-300) + est.rounding
 
 
-def pick_refined(first: Estimates, second: Estimates, terms: np.ndarray) -> tuple:
-    """(use second?, its modelled error) for each refined coordinate."""
-    e1 = extrapolation_error(first, terms)
-    e2 = extrapolation_error(second, terms)
-    return e2 < e1, np.minimum(e1, e2)
+def pick_refined(first: Estimates, second: Estimates, terms: np.ndarray) -> np.ndarray:
+    """For each refined coordinate: is the second value's modelled error the smaller?"""
+    return extrapolation_error(second, terms) < extrapolation_error(first, terms)
 
 
 def complex_probe_agrees(fc, real_values, f0: float, hc: float, t: float, eps_f: float) -> tuple:
