@@ -26,7 +26,7 @@ def mgh_points():
             yield pytest.param(p, np.array(m), id=f"{p.name}-minimiser{k}")
 
 
-@pytest.mark.parametrize("problem, x", mgh_points())
+@pytest.mark.parametrize("problem, x", list(mgh_points()))
 def test_mgh_correct_gradient_passes(problem, x):
     report = gk.compare_gradient(problem.cost, x, float_gradient(problem.name))
     assert report.passed, report.to_text()
