@@ -6,7 +6,12 @@ negative log-likelihood; the hand-written gradient below has a planted bug of a
 kind that is common in practice: its bias entry sums over the hours where the
 cost takes a mean, so it is off by the number of hours.
 
-Check it: gradcheck-kit check examples/bike_share_demand.py     (exits 1: the bug is found)
+Check it: gradcheck-kit check examples/bike_share_demand.py
+The case below declares its planted bug (expect_mismatch=True), so the command
+prints the report of the bug and exits 0 when the bug is found; under pytest the
+case is an expected failure.  Check the cost on its own to see the plain verdict:
+          gradcheck-kit check examples/bike_share_demand.py:demand_cost \
+              --gradient examples/bike_share_demand.py:demand_gradient --params start.npz
 Or:       python examples/bike_share_demand.py
 """
 import numpy as np
@@ -42,7 +47,7 @@ def demand_gradient(params):
 START = {"weights": np.array([0.5, -0.5, 0.2, 0.1]), "bias": 1.0}
 
 # Declared for `gradcheck-kit check` and for the pytest plugin.
-gk.case(gradient=demand_gradient, params=START)(demand_cost)
+gk.case(gradient=demand_gradient, params=START, expect_mismatch=True)(demand_cost)
 
 if __name__ == "__main__":
     report = gk.compare_gradient(demand_cost, START, demand_gradient)

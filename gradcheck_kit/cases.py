@@ -29,6 +29,7 @@ class Case:
     options: dict
     name: str
     examples: int = DEFAULT_EXAMPLES
+    expect_mismatch: bool = False   # a planted bug, kept as a demonstration or a canary
 
 
 @dataclass
@@ -44,8 +45,17 @@ class CaseResult:
     def passed(self) -> bool:
         return self.report.passed
 
+    @property
+    def as_expected(self) -> bool:
+        """Passed, or failed where the case declares a planted bug."""
+        return self.report.passed != self.case.expect_mismatch
+
     def to_text(self) -> str:
         text = self.report.to_text()
+        if self.case.expect_mismatch:
+            text += ("\n  (this case declares a planted bug: the mismatch above was expected)"
+                     if not self.passed else "\n  this case declares a planted bug, but every "
+                     "coordinate agrees: the check missed it")
         if self.drawn and not self.passed:
             text += f"\n  failing point (shrunk by hypothesis): {describe_point(self.point)}"
         elif self.drawn:
@@ -53,8 +63,13 @@ class CaseResult:
         return text
 
 
-def case(gradient=None, params=None, *, examples=DEFAULT_EXAMPLES, name=None, **options):
-    """Declare a gradient check on the decorated cost; returns the cost unchanged."""
+def case(gradient=None, params=None, *, examples=DEFAULT_EXAMPLES, name=None,
+         expect_mismatch=False, **options):
+    """Declare a gradient check on the decorated cost; returns the cost unchanged.
+
+    expect_mismatch=True declares a planted bug (a demonstration, or a canary that
+    the check still catches it): the case then succeeds when the check fails.
+    """
     if params is None:
         raise CheckInputError("case: params= is required (a structure, a function of a numpy "
                               "Generator, or a hypothesis strategy)")
@@ -64,7 +79,7 @@ def case(gradient=None, params=None, *, examples=DEFAULT_EXAMPLES, name=None, **
             raise CheckInputError(f"case: decorates a cost function, got {type(cost).__name__}")
         label = name or getattr(cost, "__name__", "cost")
         setattr(cost, CASE_ATTRIBUTE, Case(cost, gradient, params, dict(options), label,
-                                           examples))
+                                           examples, expect_mismatch))
         return cost
     return declare
 

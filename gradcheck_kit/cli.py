@@ -1,7 +1,8 @@
 """Command line: `gradcheck-kit check TARGET` (also `python -m gradcheck_kit check ...`).
 
 Exit status: 0 when every check agrees, 1 when one finds a mismatch, 2 for a
-usage error or bad input (one message, no traceback).
+usage error or bad input (one message, no traceback).  A case that declares a
+planted bug (expect_mismatch=True) counts as agreeing when its mismatch is found.
 """
 from __future__ import annotations
 
@@ -30,6 +31,10 @@ TARGET is a .py file or a dotted module name: every case declared in it with
 @gradcheck_kit.case(...) is checked.  Or TARGET is FILE_OR_MODULE:COST, one cost
 function, with --params FILE.npz (or .npy) and --gradient FILE_OR_MODULE:NAME
 (left out: autograd differentiates the cost).
+
+Exit status: 0 all checks as expected, 1 a mismatch, 2 a usage error or bad
+input.  A case declared with expect_mismatch=True (a planted bug) is as expected
+when its mismatch is found.
 
 Checking a module imports it, which runs its code: only check code you trust.
 """
@@ -188,6 +193,8 @@ def collect_cases(args) -> list:
     if isinstance(declared, Case) and not args.gradient:
         gradient = declared.gradient
     options = dict(declared.options) if isinstance(declared, Case) else {}
+    # An explicit check carries no planted-bug expectation: its exit status says
+    # whether this gradient agrees.
     return [(name, Case(cost, gradient, params, options, name))]
 
 
@@ -217,7 +224,7 @@ def run_check(args) -> int:
             path = args.plot if len(results) == 1 else \
                 str(Path(args.plot).with_name(f"{Path(args.plot).stem}-{label}{Path(args.plot).suffix}"))
             r.report.plot(path)
-    return EXIT_OK if all(r.passed for _, r in results) else EXIT_MISMATCH
+    return EXIT_OK if all(r.as_expected for _, r in results) else EXIT_MISMATCH
 
 
 def main(argv=None) -> int:

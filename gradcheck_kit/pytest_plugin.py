@@ -10,6 +10,8 @@
   every check of the session, written atomically at the end.
 - A terminal summary section lists the failed checks with their worst
   coordinates and hints.  A failure shows the report, not plugin internals.
+- A case declared with expect_mismatch=True (a planted bug) is an expected
+  failure: xfail when the check fails, a failure when it passes.
 """
 from __future__ import annotations
 
@@ -42,6 +44,7 @@ def pytest_configure(config):
     config.addinivalue_line("markers", "gradient_options(**options): options for the gradient "
                                        "checks of one test (method, rtol, atol, seed, ...)")
     config._gradient_checks = []
+    config._gradient_planted = set()   # node ids of cases that declare a planted bug
 
 
 def _session_options(config) -> dict:
@@ -71,8 +74,12 @@ class GradientCaseItem(pytest.Item):
     def runtest(self):
         options = {**_session_options(self.config), **_marker_options(self)}
         result = check_case(self.case, **options)
+        if self.case.expect_mismatch:
+            self.config._gradient_planted.add(self.nodeid)
         self.config._gradient_checks.append((self.nodeid, result.report, result.to_text()))
-        if not result.passed:
+        if self.case.expect_mismatch and not result.passed:
+            pytest.xfail("planted bug found, as declared")
+        if not result.as_expected:
             raise CaseFailed(result.to_text())
 
     def repr_failure(self, excinfo):
@@ -126,7 +133,8 @@ def gradient_audit(request):
 
 def pytest_terminal_summary(terminalreporter, exitstatus, config):
     checks = getattr(config, "_gradient_checks", [])
-    failed = [(node, report) for node, report, _ in checks if not report.passed]
+    failed = [(node, report) for node, report, _ in checks
+              if not report.passed and not _planted(config, node)]
     if not failed:
         return
     terminalreporter.section("gradient checks that failed")
@@ -136,6 +144,10 @@ def pytest_terminal_summary(terminalreporter, exitstatus, config):
         terminalreporter.write_line(f"{node}: {worst}")
         for hint in report.hints:
             terminalreporter.write_line(f"    hint: {hint}")
+
+
+def _planted(config, node) -> bool:
+    return node in getattr(config, "_gradient_planted", set())
 
 
 def pytest_sessionfinish(session, exitstatus):

@@ -331,6 +331,8 @@ def find_kinks(method: str, values: np.ndarray, f0: float, h: np.ndarray,
         return Kinks(np.zeros(n, dtype=bool), zero, zero)
     dp, dm, jump_near, jump_far = levels
     step_near = h / 2 if method == "richardson" else h
-    above_noise = np.abs(jump_near) > 20 * noise / step_near
+    eps = np.finfo(float).eps
+    above_noise = np.abs(jump_near) > 20 * noise / step_near + \
+        100 * eps * np.maximum(np.abs(dp), np.abs(dm))
     kink = above_noise & (np.abs(jump_near) >= 0.75 * np.abs(jump_far))
     return Kinks(kink, np.minimum(dp, dm), np.maximum(dp, dm))

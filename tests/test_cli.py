@@ -94,8 +94,8 @@ def test_autograd_when_gradient_is_left_out(files, capsys):
     (files / "ag_mod.py").write_text("import autograd.numpy as np\n"
                                      "def cost(p):\n    return np.sum(np.tanh(p['W'])) + "
                                      "np.sum(p['b'] ** 3)\n")
-    code, out, _ = run(capsys, f"{files / 'ag_mod.py'}:cost", "--params", files / "p.npz")
-    assert code == 0, out
+    code, out, err = run(capsys, f"{files / 'ag_mod.py'}:cost", "--params", files / "p.npz")
+    assert code == 0, out + err
 
 
 @pytest.mark.parametrize("args, words", [
