@@ -239,6 +239,10 @@ def main(argv=None) -> int:
     except CheckInterrupted:
         print("gradcheck-kit: interrupted; the partial report is above", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader went away (| head): stop quietly, as command-line tools do
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     return EXIT_USAGE
 
 
