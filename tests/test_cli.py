@@ -162,3 +162,26 @@ def test_entry_points_and_help(files):
         assert done.returncode == 1 and "FAIL" in done.stdout
     helped = subprocess.run(["gradcheck-kit", "check", "--help"], capture_output=True, text=True)
     assert helped.returncode == 0 and "runs its code" in helped.stdout
+
+
+def test_ctrl_c_exits_130_after_the_partial_report(files, capsys):
+    (files / "slow_mod.py").write_text(textwrap.dedent("""
+        import numpy as np
+        import gradcheck_kit as gk
+        calls = [0]
+
+        @gk.case(gradient=lambda x: 2 * x, params=np.ones(20), method="central")
+        def interrupted(x):
+            calls[0] += 1
+            if calls[0] == 25:
+                raise KeyboardInterrupt   # as if the user pressed Ctrl-C
+            return float(np.sum(x ** 2))
+    """))
+    code, _, err = run(capsys, files / "slow_mod.py")
+    assert code == 130 and "INTERRUPTED" in err and "interrupted" in err.splitlines()[-1]
+
+
+def test_a_closed_pipe_ends_quietly(files):
+    done = subprocess.run(f"gradcheck-kit check {files / 'bad_mod.py'} | head -1", shell=True,
+                          capture_output=True, text=True)
+    assert done.stdout.startswith("== ") and "Traceback" not in done.stderr
