@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from .errors import CheckInputError
-from .tree import Layout, flatten_like, rebuild
+from .tree import Layout, assemble, flatten_like, rebuild
 
 
 def traced_rebuild(v, layout: Layout, batched: bool = False):
@@ -18,8 +18,6 @@ def traced_rebuild(v, layout: Layout, batched: bool = False):
     batched=True gives every leaf a leading batch axis of length 1."""
     import autograd.numpy as anp
 
-    from .tree import _assemble
-
     leaves = []
     for leaf in layout.leaves:
         seg = v[leaf.offset:leaf.offset + leaf.size]
@@ -27,7 +25,7 @@ def traced_rebuild(v, layout: Layout, batched: bool = False):
             leaves.append(anp.reshape(seg, (1,) + leaf.shape))
         else:
             leaves.append(anp.reshape(seg, leaf.shape) if leaf.shape else seg[0])
-    return _assemble(layout.skeleton, leaves)
+    return assemble(layout.skeleton, leaves)
 
 
 def autograd_gradient(cost, params, layout: Layout, base, vectorized=False):

@@ -186,7 +186,7 @@ def rebuild(vector: np.ndarray, layout: Layout, batched: bool = False) -> Any:
     """
     values = [_leaf_value(vector[..., leaf.offset:leaf.offset + leaf.size], leaf, batched)
               for leaf in layout.leaves]
-    return _assemble(layout.skeleton, values)
+    return assemble(layout.skeleton, values)
 
 
 def rebuilder(layout: Layout, complex_values: bool = False):
@@ -202,11 +202,12 @@ def rebuilder(layout: Layout, complex_values: bool = False):
     return lambda vector: rebuild(vector, layout)
 
 
-def _assemble(skeleton, values):
+def assemble(skeleton, values):
+    """The structure of `skeleton` with its leaves taken from `values`, in order."""
     if skeleton[0] == "leaf":
         return values[skeleton[1]]
     _, kind_type, keys, children = skeleton
-    built = [_assemble(c, values) for c in children]
+    built = [assemble(c, values) for c in children]
     if keys is not None:
         pairs = zip(keys, built)
         return dict(pairs) if kind_type is dict else kind_type(pairs)

@@ -126,17 +126,17 @@ def _list(names, limit=4):
 
 
 def _describe_factor(c: float) -> str:
-    for k in range(2, 100001):
-        if abs(c - k) <= 1e-6 * k:
-            extra = "" if k == 2 else (f": a sum over {k} items where the cost takes their mean "
-                                        "(mean versus sum)?")
-            return f"{k} times the numeric one{extra}"
-        if abs(c - 1 / k) <= 1e-6 / k:
-            extra = "" if k == 2 else (f": a mean over {k} items where the cost sums them "
-                                        "(mean versus sum)?")
-            return f"1/{k} of the numeric one{extra}"
-        if k > 2 and k > c and k > 1 / c:
-            break
+    """Words for a constant ratio analytic / numeric: 2, 1/2, or k and 1/k for an integer k."""
+    k = round(c)
+    if k >= 2 and abs(c - k) <= 1e-6 * k:
+        extra = "" if k == 2 else (f": a sum over {k} items where the cost takes their mean "
+                                    "(mean versus sum)?")
+        return f"{k} times the numeric one{extra}"
+    k = round(1 / c)
+    if k >= 2 and abs(1 / c - k) <= 1e-6 * k:
+        extra = "" if k == 2 else (f": a mean over {k} items where the cost sums them "
+                                    "(mean versus sum)?")
+        return f"1/{k} of the numeric one{extra}"
     return f"{c:.6g} times the numeric one: a constant factor is off"
 
 
