@@ -25,20 +25,20 @@ class _OutputCache:
         self.fun, self.values, self.calls = fun, {}, 0
 
     def vector(self, params):
-        point, _ = _point_key(params)
-        if point not in self.values:
+        key = _point_key(params)
+        if key not in self.values:
             self.calls += 1
-            out = self.fun(params)
-            self.values[point] = _flat_output(out)
-        return self.values[point]
+            self.values[key] = _flat_output(self.fun(params))
+        return self.values[key]
 
     def component(self, k):
         return lambda params: self.vector(params)[k]
 
 
 def _point_key(params):
-    point = np.concatenate([np.ravel(np.asarray(x)) for x in leaves_of(params)])
-    return (point.dtype.str, point.tobytes()), point
+    """A hashable key of the point: its dtype and its bytes."""
+    point = _flat_output(params)
+    return point.dtype.str, point.tobytes()
 
 
 def _flat_output(out):
