@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 
 import gradcheck_kit as gk
+from sparse_bugs import planted
 
 N = 12
 W = np.linspace(0.5, 2.0, N)
@@ -128,23 +129,29 @@ def test_sampled_coordinates_include_the_largest_and_follow_the_seed():
 
 # --- group testing ---------------------------------------------------------------------------
 def test_locate_finds_exactly_the_planted_coordinates():
-    n = 50_000
-    rng = np.random.default_rng(2)
-    w = rng.uniform(0.5, 2.0, n)
     bad = [17, 20_000, 49_999]
-
-    def big_cost(x):
-        return np.sum(w * (x ** 2 + np.sin(x)))
-
-    def big_grad(x):
-        g = w * (2 * x + np.cos(x))
-        g[bad] *= 1.05
-        return g
-    report = gk.locate_mismatches(big_cost, rng.normal(size=n), big_grad, seed=3)
+    big_cost, big_grad, x = planted(50_000, bad, seed=2)
+    report = gk.locate_mismatches(big_cost, x, big_grad, seed=3)
     assert not report.passed
     assert sorted(r.flat_index for r in report.mismatches) == bad
     assert report.evaluations <= 150                            # a full sweep: 50,000
     assert any("group testing" in n for n in report.notes)
+
+
+def test_locate_among_a_million_in_bounded_memory():
+    """The issue's case: 3 coordinates 5% wrong among 1,000,000, at most 400 evaluations,
+    memory a few parameter vectors (never n x n)."""
+    import tracemalloc
+
+    n, bad = 1_000_000, [123_456, 500_000, 999_999]
+    big_cost, big_grad, x = planted(n, bad, seed=1)
+    tracemalloc.start()
+    report = gk.locate_mismatches(big_cost, x, big_grad, seed=2)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert sorted(r.flat_index for r in report.mismatches) == bad and not report.passed
+    assert report.evaluations <= 400
+    assert peak < 20 * 8 * n     # about 13 vectors were seen: point copies, the cost's own
 
 
 def test_locate_passes_a_right_gradient_cheaply():
