@@ -62,8 +62,8 @@ class _Prober:
             return True     # a failing cost in the group is worth isolating too
         analytic = float(self.g @ v)
         terms = float(np.sum(np.abs(self.g[members] * v[members])))
-        allowed = verdicts.SAFETY * est.error[0] + verdicts.ANALYTIC_ROUNDING * setup.eps_f * (
-            abs(analytic) + terms)
+        allowed = verdicts.allowed_difference(analytic, est.derivative[0], est.error[0],
+                                              terms=terms, eps_f=setup.eps_f)
         return not abs(analytic - est.derivative[0]) <= allowed
 
 

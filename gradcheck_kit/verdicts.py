@@ -2,7 +2,7 @@
 
 Default rule (no rtol / atol given).  A coordinate agrees when
 
-    |analytic - numeric| <= 2 * error_estimate + 1000 * eps_f * (|analytic| + terms)
+    |analytic - numeric| <= 2 * error_estimate + min(1000 * eps_f, 1e-3) * (|analytic| + terms)
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
 rounding, from stencils.py).  The second part allows for rounding in the
@@ -26,6 +26,7 @@ VERDICTS = ("agree", "disagree", "kink", "noisy", "non-finite", "error")
 FAILING = ("disagree", "non-finite", "error")   # verdicts that fail a report
 SAFETY = 2.0
 ANALYTIC_ROUNDING = 1000.0
+ANALYTIC_ROUNDING_CAP = 1e-3
 
 
 def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
@@ -37,7 +38,8 @@ def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
 def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None):
     """How far apart analytic and numeric may be, per coordinate (see module text)."""
     if rtol is None and atol is None:
-        return SAFETY * error + ANALYTIC_ROUNDING * eps_f * (np.abs(analytic) + terms)
+        share = min(ANALYTIC_ROUNDING * eps_f, ANALYTIC_ROUNDING_CAP)
+        return SAFETY * error + share * (np.abs(analytic) + terms)
     return (atol or 0.0) + (rtol or 0.0) * np.abs(numeric)
 
 

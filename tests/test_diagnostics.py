@@ -312,3 +312,19 @@ def test_taylor_order_two_for_the_right_gradient_and_one_for_a_wrong_one(seed):
     assert not wrong.passed and abs(wrong.order - 1) <= 0.3, wrong
     assert len(right.steps) == len(right.remainders) == len(right.first_order)
     assert gk.taylor_test(taylor_cost, x, seed=seed).passed  # autograd's gradient
+
+
+def test_float16_cost_still_gets_a_verdict():
+    """numpy.finfo(float16).eps is 2**-10: the analytic allowance is capped, so the
+    error estimates decide and a 20% bug is caught while the right gradient passes."""
+    w = np.linspace(-1, 1, 6, dtype=np.float16)
+
+    def cost(v):
+        return np.sum(np.tanh(v) ** 2, dtype=np.float16)
+
+    def right(v):
+        t = np.tanh(v.astype(float))
+        return 2 * t * (1 - t ** 2)
+    assert gk.compare_gradient(cost, w, right).passed
+    wrong = gk.compare_gradient(cost, w, lambda v: right(v) * np.array([1, 1, 1.2, 1, 1, 1]))
+    assert [r.name for r in wrong.mismatches] == ["x[2]"]
