@@ -23,6 +23,7 @@ from .plan import METHOD_CHOICES
 from .report import write_atomically
 
 EXIT_OK, EXIT_MISMATCH, EXIT_USAGE = 0, 1, 2
+LOADED_PREFIX = "gradcheck_target_"   # module names given to files loaded by path
 
 DESCRIPTION = """\
 Check the gradients of a Python module.
@@ -84,7 +85,7 @@ def load_module(spec: str):
         path = Path(spec)
         if not path.is_file():
             raise UsageError(f"no such file: {spec}")
-        name = f"gradcheck_target_{path.stem}"
+        name = f"{LOADED_PREFIX}{path.stem}"
         module_spec = importlib.util.spec_from_file_location(name, path)
         module = importlib.util.module_from_spec(module_spec)
         sys.modules[name] = module        # so process pools can pickle its functions
@@ -146,13 +147,15 @@ def load_params(path: str):
 
 
 def make_executor(args):
+    """(executor or None, the object to close afterwards)."""
     if args.workers is not None and args.scheduler is not None:
         raise UsageError("--workers and --scheduler: give one or the other")
     if args.workers is not None:
         if args.workers < 1:
             raise UsageError(f"--workers: expected a number >= 1, got {args.workers}")
         from concurrent.futures import ProcessPoolExecutor
-        return ProcessPoolExecutor(args.workers)
+        pool = ProcessPoolExecutor(args.workers)
+        return pool, pool
     if args.scheduler is not None:
         try:
             from distributed import Client
@@ -162,8 +165,8 @@ def make_executor(args):
             client = Client(args.scheduler, timeout="10s")
         except Exception as exc:  # noqa: BLE001
             raise UsageError(f"--scheduler: cannot reach {args.scheduler}: {exc}") from exc
-        return client.get_executor()
-    return None
+        return client.get_executor(), client
+    return None, None
 
 
 def collect_cases(args) -> list:
@@ -198,21 +201,38 @@ def collect_cases(args) -> list:
     return [(name, Case(cost, gradient, params, options, name))]
 
 
+def ship_loaded_modules_by_value():
+    """Modules loaded from a file path are not importable on Dask workers: have
+    cloudpickle send their functions by value instead of by name."""
+    try:
+        import cloudpickle
+    except ImportError:  # pragma: no cover - installed with the dask extra
+        return
+    for name, module in list(sys.modules.items()):
+        if name.startswith(LOADED_PREFIX):
+            cloudpickle.register_pickle_by_value(module)
+
+
 def run_check(args) -> int:
-    executor = make_executor(args)
+    cases = collect_cases(args)
+    executor, owner = make_executor(args)
+    if args.scheduler is not None:
+        ship_loaded_modules_by_value()
     overrides = {"method": args.method, "seed": args.seed, "rtol": args.rtol, "atol": args.atol,
                  "coordinates": args.coordinates, "executor": executor,
                  "progress": False if args.no_progress else None}
     results = []
     try:
-        for label, c in collect_cases(args):
+        for label, c in cases:
             result = check_case(c, **overrides)
             results.append((label, result))
             print(result.report.to_text().splitlines()[0] + f"  [{label}]" if args.quiet
                   else f"== {label}\n{result.to_text()}\n")
     finally:
-        if executor is not None:
-            executor.shutdown()
+        if hasattr(owner, "close"):      # a Dask client
+            owner.close()
+        elif owner is not None:          # a process pool
+            owner.shutdown()
     if args.json:
         document = results[0][1].report.to_dict() if len(results) == 1 else {
             "schema": "gradcheck_kit/check-run", "schema_version": 1,

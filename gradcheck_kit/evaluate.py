@@ -14,7 +14,7 @@ import pickle
 import sys
 import time
 import warnings
-from concurrent.futures import Executor, ProcessPoolExecutor
+from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -157,17 +157,46 @@ def _check_picklable(cost, executor):
             "uses cloudpickle") from exc
 
 
+def _run_shipped_chunk(blob, layout, base, where, amounts, start):
+    """Worker side of a cost sent as cloudpickle bytes (see _shipped)."""
+    import cloudpickle
+
+    return _run_chunk(cloudpickle.loads(blob), layout, base, where, amounts, start)
+
+
+def _shipped(cost, executor):
+    """(worker function, cost payload) for an executor.
+
+    Threads share the cost; a process pool gets it through the standard pickle (a
+    cost it cannot pickle is caught earlier, with the way out).  Other executors,
+    a Dask client's among them, get cloudpickle bytes: their serializer may send a
+    function by name, which fails on a worker that cannot import its module.
+    """
+    if isinstance(executor, (ThreadPoolExecutor, ProcessPoolExecutor)):
+        return _run_chunk, cost
+    try:
+        import cloudpickle
+    except ImportError:
+        return _run_chunk, cost
+    return _run_shipped_chunk, cloudpickle.dumps(cost)
+
+
 def _run_executor(cost, layout, base, where, amounts, executor, bar):
     m = len(amounts)
     workers = getattr(executor, "_max_workers", None) or 4
     n_chunks = min(m, 4 * workers)
     bounds = np.linspace(0, m, n_chunks + 1).astype(int) if m else [0]
-    futures = [executor.submit(_run_chunk, cost, layout, base, where[lo:hi], amounts[lo:hi], lo)
+    worker, payload = _shipped(cost, executor)
+    futures = [executor.submit(worker, payload, layout, base, where[lo:hi], amounts[lo:hi], lo)
                for lo, hi in zip(bounds[:-1], bounds[1:]) if hi > lo]
     pieces, failures = [], {}
     try:
         for fut, lo, hi in zip(futures, bounds[:-1], bounds[1:]):
-            vals, fails = fut.result()
+            try:
+                vals, fails = fut.result()
+            except Exception as exc:  # noqa: BLE001 - the chunk never ran (e.g. unpicklable)
+                vals, fails = _missing(hi - lo, np.complex128 if isinstance(amounts[lo], complex)
+                                       else np.float64), {k: exc for k in range(lo, hi)}
             pieces.append(vals)
             failures.update(fails)
             if bar is not None:

@@ -185,3 +185,15 @@ def test_a_closed_pipe_ends_quietly(files):
     done = subprocess.run(f"gradcheck-kit check {files / 'bad_mod.py'} | head -1", shell=True,
                           capture_output=True, text=True)
     assert done.stdout.startswith("== ") and "Traceback" not in done.stderr
+
+
+def test_scheduler_runs_a_file_module_on_a_dask_cluster(files, capsys):
+    """Functions of a module loaded by path are shipped by value, so the workers, which
+    cannot import that module, still run them."""
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        code, out, _ = run(capsys, files / "bad_mod.py", "--scheduler", cluster.scheduler_address,
+                           "--method", "central", "--quiet")
+    local, out_local, _ = run(capsys, files / "bad_mod.py", "--method", "central", "--quiet")
+    assert code == local == 1 and out == out_local

@@ -187,3 +187,16 @@ def test_interrupt_ends_with_the_partial_report(capsys):
     assert report.interrupted and not report.passed
     assert 0 < len(report.rows) < N and all(r.verdict == "agree" for r in report.rows)
     assert "INTERRUPTED" in capsys.readouterr().err
+
+
+def test_an_executor_whose_tasks_fail_gives_error_rows_not_a_crash():
+    from concurrent.futures import Executor, Future
+
+    class Broken(Executor):
+        def submit(self, fn, *args, **kwargs):
+            future = Future()
+            future.set_exception(RuntimeError("worker lost"))
+            return future
+    report = gk.compare_gradient(cost, X0, grad, method="central", executor=Broken())
+    assert not report.passed and {r.verdict for r in report.rows} == {"error"}
+    assert "worker lost" in report.rows[0].detail
