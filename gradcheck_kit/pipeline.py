@@ -245,6 +245,7 @@ def numeric_gradient(cost, params, *, method="central", step=None, vectorized=Fa
                      executor=None):
     """Numerical gradient of a scalar cost, in the structure (and float dtypes) of params."""
     plan.check_method(method)
+    plan.check_flags(vectorized=vectorized)
     setup = prepare(cost, params, vectorized=vectorized, executor=executor, repeat=False)
     method = resolve_method(setup, method, None)
     coords = np.arange(setup.layout.size)
@@ -361,6 +362,7 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
                      progress=None) -> GradientReport:
     """Compare the analytic gradient with numeric derivatives, coordinate by coordinate."""
     plan.check_method(method)
+    plan.check_flags(seed=seed, progress=progress, vectorized=vectorized)
     rtol = plan.check_tolerance(rtol, "rtol")
     atol = plan.check_tolerance(atol, "atol")
     setup = prepare(cost, params, vectorized=vectorized, executor=executor, progress=progress)

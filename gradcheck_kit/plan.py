@@ -35,6 +35,16 @@ def check_tolerance(value, name):
     return float(value)
 
 
+def check_flags(*, seed=None, progress=None, vectorized=False) -> None:
+    """seed: None or an int; progress: None or a bool; vectorized: a bool."""
+    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, numbers.Integral)):
+        raise CheckInputError(f"seed: expected an int or None, got {seed!r}")
+    if progress is not None and not isinstance(progress, bool):
+        raise CheckInputError(f"progress: expected True, False or None, got {progress!r}")
+    if not isinstance(vectorized, bool):
+        raise CheckInputError(f"vectorized: expected True or False, got {vectorized!r}")
+
+
 def _leaf_indices(leaf, spec, name):
     """Flat positions (within the leaf) named by a list of ints or index tuples."""
     out = []

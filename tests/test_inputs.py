@@ -75,7 +75,8 @@ def test_empty_params():
     ({"method": "secant"}, "method"), ({"rtol": -1}, "rtol"), ({"atol": "1e-3"}, "atol"),
     ({"coordinates": 0}, "coordinates"), ({"coordinates": {"Q": [0]}}, "no parameter named"),
     ({"coordinates": {"W": [(5, 0)]}}, "out of range"), ({"step": -1.0}, "step"),
-    ({"executor": "pool"}, "executor")])
+    ({"executor": "pool"}, "executor"), ({"seed": 1.5}, "seed"), ({"progress": "yes"}, "progress"),
+    ({"vectorized": 1}, "vectorized")])
 def test_bad_options_name_themselves(kwargs, words):
     text, _ = message(cost=quad, params=PARAMS, gradient=quad_grad, **kwargs)
     assert words in text
