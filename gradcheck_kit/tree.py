@@ -136,6 +136,7 @@ def flatten_like(tree: Any, layout: Layout, what: str) -> np.ndarray:
     found: list = []
     if layout.skeleton[0] == "leaf" and isinstance(tree, (list, tuple)):
         tree = np.asarray(tree)  # a bare-array parameter may get a list back
+    tree = _in_key_order(tree, layout.skeleton)
     skeleton = _walk(tree, (), found, what, _as_values)
     expected = [leaf.name for leaf in layout.leaves]
     got = [_leaf_name(p) for p, _, _ in found]
@@ -150,6 +151,16 @@ def flatten_like(tree: Any, layout: Layout, what: str) -> np.ndarray:
                 f"got {tuple(array.shape)}")
         vector[leaf.offset:leaf.offset + leaf.size] = np.ravel(array)
     return vector
+
+
+def _in_key_order(tree, skeleton):
+    """Dicts reordered to the keys' order in params: a gradient {'b', 'W'} matches params
+    {'W', 'b'}; anything that does not match is left for the structure check to name."""
+    if skeleton[0] == "dict" and isinstance(tree, dict) and set(tree) == set(skeleton[2]):
+        return {k: _in_key_order(tree[k], child) for k, child in zip(skeleton[2], skeleton[3])}
+    if skeleton[0] == "seq" and isinstance(tree, (list, tuple)) and len(tree) == len(skeleton[3]):
+        return [_in_key_order(v, child) for v, child in zip(tree, skeleton[3])]
+    return tree
 
 
 def _shape_of(skeleton):

@@ -108,3 +108,8 @@ def test_a_cost_failing_near_the_base_point_gives_error_rows_not_a_crash():
     errors = [r for r in report.rows if r.verdict == "error"]
     assert [r.name for r in errors] == ["W[0, 0]"]
     assert "outside the table" in errors[0].detail and not report.passed
+
+
+def test_gradient_dict_in_another_key_order_is_matched_by_key():
+    report = gk.compare_gradient(quad, PARAMS, lambda p: {"b": 2 * p["b"], "W": 2 * p["W"]})
+    assert report.passed and {r.parameter for r in report.rows} == {"W", "b"}
