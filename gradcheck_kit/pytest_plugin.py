@@ -93,7 +93,10 @@ class GradientCaseItem(pytest.Item):
 
 @pytest.hookimpl(tryfirst=True)
 def pytest_pycollect_makeitem(collector, name, obj):
-    declared = getattr(obj, CASE_ATTRIBUTE, None)
+    try:  # the plugin sees every object of every test module: never let one break collection
+        declared = getattr(obj, CASE_ATTRIBUTE, None)
+    except Exception:  # noqa: BLE001 - e.g. a lazy module that fails on attribute access
+        return None
     if isinstance(declared, Case) and isinstance(collector, pytest.Module):
         # named by the module attribute: stable, and readable even for a lambda
         return GradientCaseItem.from_parent(collector, name=f"gradient[{name}]", case=declared)
