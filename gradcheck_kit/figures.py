@@ -67,6 +67,10 @@ def draw_error_map(ax, name, values, verdict):
         if v in LETTERS:
             ax.text(j, i, LETTERS[v], ha="center", va="center", fontsize=9, fontweight="bold",
                     color="white" if values[i, j] > -8 else "black")
+    from matplotlib.ticker import MaxNLocator
+
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_title(f"{name}: relative error per entry (white: not checked)")
     ax.set_xlabel("column (trailing axes flattened)")
     ax.set_ylabel("row")
