@@ -109,8 +109,33 @@ def draw_taylor(ax, result):
     ax.legend(fontsize=8)
 
 
+def plot_jacobian(report, path):
+    """One error map of a Jacobian check: rows are outputs, columns inputs."""
+    plt = _pyplot()
+    m, n = report.extra["outputs"], report.extra["inputs"]
+    values = np.full((m, n), np.nan)
+    verdict = np.full((m, n), "", dtype=object)
+    for r in report.rows:
+        i, j = divmod(r.flat_index, n)
+        rel = r.rel_error if np.isfinite(r.rel_error) else 1.0
+        values[i, j] = np.log10(max(rel, 1e-16))
+        verdict[i, j] = r.verdict
+    fig, ax = plt.subplots(figsize=(max(5, 0.4 * n + 3), max(4, 0.35 * m + 2)))
+    image = draw_error_map(ax, "Jacobian", values, verdict)
+    ax.set_xlabel("input coordinate (flat index)")
+    ax.set_ylabel("output (flat index)")
+    fig.colorbar(image, ax=ax, label="log10 relative error")
+    fig.suptitle(report.to_text().splitlines()[0], fontsize=9)
+    fig.tight_layout()
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return fig
+
+
 def plot_report(report, path, *, sweep=True, taylor=True):
     """Write the report's figure to `path`; returns the matplotlib Figure."""
+    if "outputs" in report.extra:
+        return plot_jacobian(report, path)
     plt = _pyplot()
     params = [p for p in report.parameters() if p["checked"] >= 2][:4]
     extra = report.source is not None and (sweep or taylor)

@@ -144,7 +144,8 @@ def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
     return GradientReport(rows=rows, method="/".join(sorted(methods)), evaluations=cache.calls + 1,
                           total=m * n, hints=hints, notes=notes, problems=problems,
                           suggested_rtol=rtol_s, suggested_atol=atol_s,
-                          interrupted=interrupted, title="jacobian check")
+                          interrupted=interrupted, title="jacobian check",
+                          extra={"outputs": m, "inputs": n})
 
 
 def _merge_repeated(notes, names):

@@ -70,3 +70,16 @@ def test_taylor_figure_alone(tmp_path):
     fig = result.plot(tmp_path / "taylor.png")
     assert (tmp_path / "taylor.png").stat().st_size > 5_000
     assert fig.axes[0].get_yscale() == "log"
+
+
+def test_jacobian_figure_maps_outputs_against_inputs(tmp_path):
+    import autograd.numpy as anp
+
+    A = np.array([[1.0, 2.0, 0.5], [0.3, 1.0, 3.0]])
+    report = gk.compare_jacobian(lambda x: anp.sin(anp.dot(A, x)), np.array([0.3, 0.2, -0.1]),
+                                 lambda x: np.cos(A @ x)[:, None] * A * np.array([1, 1.02, 1]))
+    fig = report.plot(tmp_path / "jac.png")
+    ax = fig.axes[0]
+    assert ax.get_ylabel() == "output (flat index)" and ax.get_images()[0].get_array().shape == (2, 3)
+    letters = sorted(t.get_text() for t in ax.texts)
+    assert letters == ["D", "D"]      # the wrong column, one letter per output
