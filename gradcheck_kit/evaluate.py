@@ -22,7 +22,11 @@ import numpy as np
 from .errors import CheckInputError
 from .tree import Layout, flatten, rebuild, rebuilder
 
-DEFAULT_CHUNK_BYTES = 256 * 2**20  # memory bound for one batch of a vectorized cost
+# Memory of one batch of a vectorized cost.  Far inside the 256 MB a batch may take:
+# measured on a 2-core machine (tests/benchmarks.py), 4 MiB batches, which stay in cache,
+# ran the same costs 1.0-2x faster than 256 MB ones.  Settable: a cost with a large fixed
+# cost per call (a compiled or accelerator kernel) may want bigger batches.
+DEFAULT_CHUNK_BYTES = 4 * 2**20
 PROGRESS_AFTER_SECONDS = 2.0       # show a bar when the run looks longer than this
 
 
@@ -102,29 +106,53 @@ def _run_chunk(cost, layout, base, where, amounts, start):
     return values, failures
 
 
-def _batch(base, where, amounts, dtype) -> np.ndarray:
-    """The points of a batch as rows; coordinate shifts are set in one vectorized step."""
-    batch = np.empty((len(amounts), base.size), dtype=dtype)
-    batch[:] = base
-    coords = [k for k, w in enumerate(where) if type(w) is int or isinstance(w, np.integer)]
-    if len(coords) == len(where):
-        batch[np.arange(len(where)), np.asarray(where, dtype=int)] += np.asarray(amounts)
-        return batch
-    for k, w in enumerate(where):
-        batch[k] = _point(base, w, amounts[k])
-    return batch
+class _Batches:
+    """The points of successive batches as rows of one buffer.
+
+    Coordinate shifts touch one entry per row, so a buffer kept full of the base
+    point is shifted before the call and set back after it: O(rows) work per batch
+    instead of a fresh copy of every row (which, at n = 2000, cost a quarter of the
+    whole run).  Only for costs seen not to edit their input; others get fresh rows.
+    """
+
+    def __init__(self, base, rows, dtype, reuse):
+        self.base, self.reuse = base, reuse
+        self.buffer = np.empty((rows, base.size), dtype=dtype)
+        self.buffer[:] = base
+        self.undo = None
+
+    def rows(self, where, amounts) -> np.ndarray:
+        k = len(amounts)
+        ints = all(type(w) is int or isinstance(w, np.integer) for w in where)
+        if not (ints and self.reuse):
+            batch = np.empty((k, self.base.size), dtype=self.buffer.dtype)
+            for r, w in enumerate(where):
+                batch[r] = _point(self.base, w, amounts[r])
+            return batch
+        cols = np.asarray(where, dtype=int)
+        rows = np.arange(k)
+        self.buffer[rows, cols] += np.asarray(amounts)
+        self.undo = (rows, cols)
+        return self.buffer[:k]
+
+    def restore(self) -> None:
+        if self.undo is not None:
+            rows, cols = self.undo
+            self.buffer[rows, cols] = self.base[cols]
+            self.undo = None
 
 
-def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar):
+def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar, reuse=True):
     m = len(amounts)
     is_complex = bool(m) and isinstance(amounts[0], complex)
     row_bytes = base.size * (16 if is_complex else 8)
     per_batch = max(1, int(chunk_bytes // max(row_bytes, 1)))
     values = _missing(m, np.complex128 if is_complex else np.float64)
     failures = {}
+    batches = _Batches(base, min(per_batch, max(m, 1)), values.dtype, reuse)
     for lo in range(0, m, per_batch):
         hi = min(m, lo + per_batch)
-        batch = _batch(base, where[lo:hi], amounts[lo:hi], values.dtype)
+        batch = batches.rows(where[lo:hi], amounts[lo:hi])
         try:
             out = np.asarray(cost(rebuild(batch, layout, batched=True)))
             if out.shape not in ((hi - lo,), (hi - lo, 1)):
@@ -139,6 +167,8 @@ def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar):
         except Exception as exc:  # noqa: BLE001
             for k in range(lo, hi):
                 failures[k] = exc
+        finally:
+            batches.restore()
         if bar is not None:
             bar.update(hi - lo)
     return values, failures, False
@@ -229,6 +259,7 @@ class CostRunner:
         self.output_dtype = np.dtype(np.float64)
         self.seconds_per_call = 0.0
         self.interrupted = False
+        self.edits_input = False     # set when a base call is seen to change its input
         if executor is not None:
             _check_picklable(cost, executor)
 
@@ -282,13 +313,17 @@ class CostRunner:
         try:
             now, layout = flatten(after)  # a batch of one flattens to the same n values
         except Exception:  # noqa: BLE001 - a changed structure is a change too
+            self.edits_input = True
             return ["the structure of params"]
         if now.shape != self.base.shape:
+            self.edits_input = True
             return ["the structure of params"]
-        return [leaf.name for leaf in self.layout.leaves
-                if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
-                                      self.base[leaf.offset:leaf.offset + leaf.size],
-                                      equal_nan=True)]
+        changed = [leaf.name for leaf in self.layout.leaves
+                   if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
+                                         self.base[leaf.offset:leaf.offset + leaf.size],
+                                         equal_nan=True)]
+        self.edits_input = self.edits_input or bool(changed)
+        return changed
 
     def _bar(self, m, label):
         show = self.progress
@@ -310,7 +345,7 @@ class CostRunner:
             if self.vectorized:
                 values, failures, stopped = _run_vectorized(
                     self.cost, self.layout, self.base, where, amounts,
-                    self.chunk_bytes or DEFAULT_CHUNK_BYTES, bar)
+                    self.chunk_bytes or DEFAULT_CHUNK_BYTES, bar, reuse=not self.edits_input)
             elif self.executor is not None:
                 values, failures, stopped = _run_executor(
                     self.cost, self.layout, self.base, where, amounts, self.executor, bar)

@@ -200,3 +200,14 @@ def test_an_executor_whose_tasks_fail_gives_error_rows_not_a_crash():
     report = gk.compare_gradient(cost, X0, grad, method="central", executor=Broken())
     assert not report.passed and {r.verdict for r in report.rows} == {"error"}
     assert "worker lost" in report.rows[0].detail
+
+
+def test_vectorized_cost_that_edits_its_batch_gets_fresh_rows():
+    def editing(x):
+        value = batched_cost(x)
+        x[:] = 0.0                      # scribbles over its input batch
+        return value
+    clean = gk.compare_gradient(batched_cost, X0, grad, method="central", vectorized=True)
+    edited = gk.compare_gradient(editing, X0, grad, method="central", vectorized=True)
+    assert edited.passed and [r.numeric for r in edited.rows] == [r.numeric for r in clean.rows]
+    assert any("modifies its input" in n for n in edited.notes)
