@@ -68,9 +68,19 @@ def _missing(m: int, dtype) -> np.ndarray:
     return np.full(m, fill, dtype=dtype)
 
 
+def _is_coordinate(where) -> bool:
+    """A request's direction is a coordinate number (else a dense vector or None)."""
+    return type(where) is int or isinstance(where, np.integer)
+
+
+def _value_dtype(amounts):
+    """complex128 for complex-step requests, float64 otherwise (all requests alike)."""
+    return np.complex128 if len(amounts) and isinstance(amounts[0], complex) else np.float64
+
+
 def _point(base: np.ndarray, where, amount) -> np.ndarray:
     v = base.astype(np.complex128) if isinstance(amount, complex) else base.copy()
-    if type(where) is int or isinstance(where, np.integer):
+    if _is_coordinate(where):
         v[where] += amount
     elif where is not None:
         v += amount * where
@@ -80,7 +90,7 @@ def _point(base: np.ndarray, where, amount) -> np.ndarray:
 def _run_serial(cost, layout, base, where, amounts, start, bar):
     """Evaluate requests one by one; returns (values, failures, interrupted)."""
     m = len(amounts)
-    dtype = np.complex128 if m and isinstance(amounts[0], complex) else np.float64
+    dtype = _value_dtype(amounts)
     values = _missing(m, dtype)
     failures = {}
     is_complex = dtype == np.complex128
@@ -123,7 +133,7 @@ class _Batches:
 
     def rows(self, where, amounts) -> np.ndarray:
         k = len(amounts)
-        ints = all(type(w) is int or isinstance(w, np.integer) for w in where)
+        ints = all(_is_coordinate(w) for w in where)
         if not (ints and self.reuse):
             batch = np.empty((k, self.base.size), dtype=self.buffer.dtype)
             for r, w in enumerate(where):
@@ -144,10 +154,11 @@ class _Batches:
 
 def _run_vectorized(cost, layout, base, where, amounts, chunk_bytes, bar, reuse=True):
     m = len(amounts)
-    is_complex = bool(m) and isinstance(amounts[0], complex)
-    row_bytes = base.size * (16 if is_complex else 8)
+    dtype = _value_dtype(amounts)
+    is_complex = dtype == np.complex128
+    row_bytes = base.size * np.dtype(dtype).itemsize
     per_batch = max(1, int(chunk_bytes // max(row_bytes, 1)))
-    values = _missing(m, np.complex128 if is_complex else np.float64)
+    values = _missing(m, dtype)
     failures = {}
     batches = _Batches(base, min(per_batch, max(m, 1)), values.dtype, reuse)
     for lo in range(0, m, per_batch):
@@ -225,8 +236,8 @@ def _run_executor(cost, layout, base, where, amounts, executor, bar):
             try:
                 vals, fails = fut.result()
             except Exception as exc:  # noqa: BLE001 - the chunk never ran (e.g. unpicklable)
-                vals, fails = _missing(hi - lo, np.complex128 if isinstance(amounts[lo], complex)
-                                       else np.float64), {k: exc for k in range(lo, hi)}
+                vals = _missing(hi - lo, _value_dtype(amounts))
+                fails = {k: exc for k in range(lo, hi)}
             pieces.append(vals)
             failures.update(fails)
             if bar is not None:
@@ -311,17 +322,16 @@ class CostRunner:
     def changed_leaves(self, after) -> list:
         """Names of the parameters that the last base call changed in place."""
         try:
-            now, layout = flatten(after)  # a batch of one flattens to the same n values
+            now, _ = flatten(after)  # a batch of one flattens to the same n values
         except Exception:  # noqa: BLE001 - a changed structure is a change too
-            self.edits_input = True
-            return ["the structure of params"]
-        if now.shape != self.base.shape:
-            self.edits_input = True
-            return ["the structure of params"]
-        changed = [leaf.name for leaf in self.layout.leaves
-                   if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
-                                         self.base[leaf.offset:leaf.offset + leaf.size],
-                                         equal_nan=True)]
+            now = None
+        if now is None or now.shape != self.base.shape:
+            changed = ["the structure of params"]
+        else:
+            changed = [leaf.name for leaf in self.layout.leaves
+                       if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
+                                             self.base[leaf.offset:leaf.offset + leaf.size],
+                                             equal_nan=True)]
         self.edits_input = self.edits_input or bool(changed)
         return changed
 

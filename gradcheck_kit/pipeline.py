@@ -17,7 +17,7 @@ from .analytic import analytic_vector
 from .errors import CheckInputError, CheckInterrupted
 from .evaluate import CostRunner
 from .report import GradientReport, Row
-from .tree import Layout, coordinate_name, flatten, leaf_eps, locate, rebuild
+from .tree import Layout, coordinate_name, entry_name, flatten, leaf_eps, locate, rebuild
 
 # Five-point and Richardson redo a coordinate with a shorter step when the gap to their
 # embedded lower-order value is above this fraction of the gradient's term size (see
@@ -326,8 +326,7 @@ def rows_of(setup: Setup, comp: Comparison) -> list:
         if not num.done[j]:
             continue
         leaf, index = locate(setup.layout, int(flat))
-        name = f"{leaf.name}[{', '.join(map(str, index))}]" if index else leaf.name
-        rows.append(Row(name, leaf.name, index, int(flat), float(a[j]), float(n[j]),
+        rows.append(Row(entry_name(leaf, index), leaf.name, index, int(flat), float(a[j]), float(n[j]),
                         float(abs(a[j] - n[j])), float(rel[j]), float(err[j]),
                         str(comp.verdict[j]), comp.details[j]))
     return rows

@@ -129,14 +129,15 @@ def _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint)
         d = (8 * (f[:, 0] - f[:, 1]) - (f[:, 2] - f[:, 3])) / (12 * h)
         # The stencil is one Richardson step on C(h) and C(2h); its error is bounded,
         # conservatively as in Ridders (1982), by its distance from C(h).
-        trunc = np.abs(d - central)
-        return Estimates(d, trunc, 1.5 * noise / h, second, np.abs(d - central))
+        gap = np.abs(d - central)
+        return Estimates(d, gap, 1.5 * noise / h, second, gap.copy())  # two fields, two arrays
     if method == "richardson":
         half = (f[:, 2] - f[:, 3]) / h          # central difference at h/2
         d = (4 * half - central) / 3            # eliminates the h^2 term
         # Conservative error estimate after Ridders (1982): the extrapolated value
         # is trusted to within its distance from the best plain difference.
-        return Estimates(d, np.abs(d - half), 3 * noise / h, second, np.abs(d - half))
+        gap = np.abs(d - half)
+        return Estimates(d, gap, 3 * noise / h, second, gap.copy())
     raise ValueError(f"unknown method {method!r}")
 
 

@@ -248,12 +248,14 @@ def locate(layout: Layout, flat_index: int) -> tuple:
     return leaf, index
 
 
+def entry_name(leaf: Leaf, index: tuple) -> str:
+    """Readable name of one entry of a leaf: 'W[2, 1]', 'layers.0.b[3]', 'bias'."""
+    return f"{leaf.name}[{', '.join(map(str, index))}]" if index else leaf.name
+
+
 def coordinate_name(layout: Layout, flat_index: int) -> str:
-    """Readable name of one coordinate: 'W[2, 1]', 'layers.0.b[3]', 'bias'."""
-    leaf, index = locate(layout, flat_index)
-    if not index:
-        return leaf.name
-    return f"{leaf.name}[{', '.join(map(str, index))}]"
+    """Readable name of one coordinate of the flat vector (see entry_name)."""
+    return entry_name(*locate(layout, flat_index))
 
 
 def leaf_of_each(layout: Layout) -> np.ndarray:

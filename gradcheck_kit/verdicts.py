@@ -11,8 +11,9 @@ summed from terms that may be far larger than the result: near a minimiser
 the gradient is zero but its terms are not.  `terms` estimates their size per
 coordinate as the largest of: the largest numeric gradient entry, |f0| / scale,
 |f2| * scale (the second derivative seen by the stencil, or a typical one
-seen along the noise probe's line) and the cost's slope along that line.  eps_f is the relative precision of the cost's
-values (dtype epsilon, or measured noise where that is larger).
+seen along the noise probe's line) and the cost's slope along that line.
+eps_f is the relative precision of the cost's values (dtype epsilon, or
+measured noise where that is larger).
 
 With rtol and/or atol the rule is numpy's: agree when
 |analytic - numeric| <= atol + rtol * |numeric|, a missing one counting as 0;
