@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from .errors import CheckInputError
-from .tree import Layout, assemble, flatten_like, rebuild
+from .tree import Layout, assemble, flatten_like, leaves_of, rebuild
 
 
 def traced_rebuild(v, layout: Layout, batched: bool = False):
@@ -44,6 +44,22 @@ def autograd_gradient(cost, params, layout: Layout, base, vectorized=False):
 
 def analytic_vector(cost, base: np.ndarray, layout: Layout, gradient, vectorized=False):
     """The analytic gradient flattened like params; clear errors for every misfit."""
+    return analytic_values(cost, base, layout, gradient, vectorized)[0]
+
+
+def precision_of(value) -> float:
+    """The epsilon of the least precise floating-point leaf of a gradient value
+    (float64's for plain Python numbers and non-float leaves)."""
+    eps = float(np.finfo(np.float64).eps)
+    for leaf in leaves_of(value):
+        dtype = getattr(leaf, "dtype", None)
+        if dtype is not None and np.issubdtype(dtype, np.floating):
+            eps = max(eps, float(np.finfo(dtype).eps))
+    return eps
+
+
+def analytic_values(cost, base: np.ndarray, layout: Layout, gradient, vectorized=False):
+    """(the analytic gradient flattened like params, the precision of its values)."""
     params = rebuild(base.copy(), layout)
     if gradient is None:
         try:
@@ -62,4 +78,4 @@ def analytic_vector(cost, base: np.ndarray, layout: Layout, gradient, vectorized
         value = gradient
     if isinstance(value, (np.ndarray, float)) and np.size(value) == 1 and layout.size == 1:
         value = np.reshape(value, layout.leaves[0].shape) if layout.leaves[0].shape else value
-    return flatten_like(value, layout, "gradient")
+    return flatten_like(value, layout, "gradient"), precision_of(value)

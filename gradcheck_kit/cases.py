@@ -9,11 +9,14 @@ hypothesis is imported only when a strategy is used.
 """
 from __future__ import annotations
 
+import inspect
+import numbers
 import sys
 from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import plan
 from .errors import CheckInputError, GradientMismatchError
 from .pipeline import compare_gradient
 
@@ -69,19 +72,62 @@ def case(gradient=None, params=None, *, examples=DEFAULT_EXAMPLES, name=None,
 
     expect_mismatch=True declares a planted bug (a demonstration, or a canary that
     the check still catches it): the case then succeeds when the check fails.
+    Options are compare_gradient's; all are checked here, when the decorator is
+    applied, so a misspelt or ill-typed declaration fails at once, not later as a
+    check that quietly means something else.
     """
     if params is None:
+        if callable(gradient) and not options and name is None and expect_mismatch is False \
+                and examples == DEFAULT_EXAMPLES:
+            raise CheckInputError(
+                f"case: params= is required: write @gk.case(params=...) with parentheses (and "
+                f"gradient=... unless autograd derives it); a bare @gk.case passes the cost "
+                f"itself ({getattr(gradient, '__name__', type(gradient).__name__)!r} here) in "
+                f"place of the options")
         raise CheckInputError("case: params= is required (a structure, a function of a numpy "
                               "Generator, or a hypothesis strategy)")
+    _check_declaration(examples, name, expect_mismatch, options)
 
     def declare(cost):
         if not callable(cost):
             raise CheckInputError(f"case: decorates a cost function, got {type(cost).__name__}")
         label = name or getattr(cost, "__name__", "cost")
         setattr(cost, CASE_ATTRIBUTE, Case(cost, gradient, params, dict(options), label,
-                                           examples, expect_mismatch))
+                                           int(examples), bool(expect_mismatch)))
         return cost
     return declare
+
+
+def case_options() -> list:
+    """The option names a case may carry: compare_gradient's keyword options."""
+    return [n for n, p in inspect.signature(compare_gradient).parameters.items()
+            if p.kind == p.KEYWORD_ONLY]
+
+
+def _check_declaration(examples, name, expect_mismatch, options: dict) -> None:
+    """One-line CheckInputError for the first ill-formed option of a declaration."""
+    if not isinstance(expect_mismatch, (bool, np.bool_)):
+        raise CheckInputError(f"case: expect_mismatch: expected True or False, got "
+                              f"{expect_mismatch!r} ({type(expect_mismatch).__name__})")
+    if isinstance(examples, (bool, np.bool_)) or not isinstance(examples, numbers.Integral) \
+            or examples < 1:
+        raise CheckInputError(f"case: examples: expected a positive int (the number of points "
+                              f"drawn from a strategy), got {examples!r}")
+    if name is not None and (not isinstance(name, str) or not name):
+        raise CheckInputError(f"case: name: expected a non-empty str or None, got {name!r}")
+    known = case_options()
+    unknown = [k for k in options if k not in known]
+    if unknown:
+        raise CheckInputError(f"case: unknown option {unknown[0]!r}; expected examples, name, "
+                              f"expect_mismatch or one of {', '.join(known)}")
+    try:
+        plan.check_method(options.get("method", "auto"))
+        plan.check_flags(seed=options.get("seed"), progress=options.get("progress"),
+                         vectorized=options.get("vectorized", False))
+        for key in ("rtol", "atol"):
+            plan.check_tolerance(options.get(key), key)
+    except CheckInputError as exc:
+        raise CheckInputError(f"case: {exc}") from None
 
 
 def declared_cases(namespace: dict) -> list:

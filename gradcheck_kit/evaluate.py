@@ -347,21 +347,25 @@ class CostRunner:
         from tqdm.auto import tqdm  # imported only when a bar is shown
         return tqdm(total=m, desc=label, unit="eval", file=sys.stderr, leave=False)
 
+    def _dispatch(self, where, amounts, bar):
+        if self.vectorized:
+            return _run_vectorized(self.cost, self.layout, self.base, where, amounts,
+                                   self.chunk_bytes or DEFAULT_CHUNK_BYTES, bar,
+                                   reuse=not self.edits_input)
+        if self.executor is not None:
+            return _run_executor(self.cost, self.layout, self.base, where, amounts,
+                                 self.executor, bar)
+        return _run_serial(self.cost, self.layout, self.base, where, amounts, 0, bar)
+
     def run(self, where: list, amounts: list, label="evaluating") -> Results:
         """Evaluate base + amounts[k] * where[k] for every k, in order."""
         m = len(amounts)
         bar = self._bar(m, label)
+        # Points near the base may lie where the cost is undefined (a log stepped across
+        # 0): the values say so; numpy's warnings about them would only alarm the user.
         try:
-            if self.vectorized:
-                values, failures, stopped = _run_vectorized(
-                    self.cost, self.layout, self.base, where, amounts,
-                    self.chunk_bytes or DEFAULT_CHUNK_BYTES, bar, reuse=not self.edits_input)
-            elif self.executor is not None:
-                values, failures, stopped = _run_executor(
-                    self.cost, self.layout, self.base, where, amounts, self.executor, bar)
-            else:
-                values, failures, stopped = _run_serial(
-                    self.cost, self.layout, self.base, where, amounts, 0, bar)
+            with np.errstate(all="ignore"):
+                values, failures, stopped = self._dispatch(where, amounts, bar)
         finally:
             if bar is not None:
                 bar.close()

@@ -3,17 +3,22 @@
 Each output component is compared as its own scalar cost, through the same
 pipeline as compare_gradient.  A cache keyed by the evaluation point makes the
 function run once per point, not once per output, so a Jacobian with m outputs
-costs about what one gradient check costs.  A gradient function checked
+costs about what one gradient check costs.  Since the cache replays values, the
+checks a gradient check makes at the base point (is the cost deterministic,
+does it edit its input) are made here, on the function itself and its whole
+output vector, before any output is compared.  A gradient function checked
 against a Hessian function is the same call: the gradient is the vector
 function, the Hessian its Jacobian.
 """
 from __future__ import annotations
 
+import inspect
+
 import numpy as np
 
-from . import verdicts
+from . import plan, verdicts
 from .errors import CheckInputError
-from .pipeline import compare_gradient
+from .pipeline import REPEAT_TOLERANCE, compare_gradient
 from .report import GradientReport, Row
 from .tree import coordinate_name, flatten, leaves_of, rebuild
 
@@ -23,6 +28,10 @@ class _OutputCache:
 
     def __init__(self, fun):
         self.fun, self.values, self.calls = fun, {}, 0
+
+    def remember(self, params, vector) -> None:
+        """Store a value already computed at params (no call is counted)."""
+        self.values[_point_key(params)] = vector
 
     def vector(self, params):
         key = _point_key(params)
@@ -99,6 +108,91 @@ def _analytic_jacobian(fun, params, jacobian, m, n, allowed_shapes):
     return J.reshape(m, n)
 
 
+def _check_options(options: dict) -> None:
+    """compare_gradient's options, checked before the function is first called."""
+    known = [name for name, p in inspect.signature(compare_gradient).parameters.items()
+             if p.kind == p.KEYWORD_ONLY]
+    unknown = sorted(set(options) - set(known))
+    if unknown:
+        raise CheckInputError(f"compare_jacobian: unknown option {unknown[0]!r}; expected one of "
+                              f"{', '.join(known)}")
+    plan.check_method(options.get("method", "auto"))
+    plan.check_flags(seed=options.get("seed"), progress=options.get("progress"))
+    for name in ("rtol", "atol"):
+        plan.check_tolerance(options.get(name), name)
+
+
+def _call_at_base(fun, params, label="at the base point"):
+    try:
+        return fun(params)
+    except Exception as exc:
+        raise CheckInputError(f"fun raised {type(exc).__name__} {label}: {exc}") from exc
+
+
+def _flat_values(out, label="at the base point") -> np.ndarray:
+    """The function's outputs as one vector; a clear error for outputs that are not numbers."""
+    try:
+        flat = _flat_output(out)
+    except Exception as exc:
+        raise CheckInputError(f"fun: returned {type(out).__name__} {label}; expected an array, "
+                              f"a number or a dict / list / tuple nest of those") from exc
+    if not (np.issubdtype(flat.dtype, np.number) or flat.dtype == np.bool_):
+        raise CheckInputError(f"fun: returned {flat.dtype} values {label}; expected numbers")
+    return flat
+
+
+def _check_finite_real(values: np.ndarray, names: list) -> None:
+    """Outputs at the base point must be finite real numbers, as a gradient check's cost."""
+    if np.iscomplexobj(values):
+        raise CheckInputError("fun returned complex numbers at real parameters; expected real "
+                              "outputs")
+    bad = np.flatnonzero(~np.isfinite(values))
+    if bad.size:
+        shown = ", ".join(f"{names[k]} = {values[k]}" for k in bad[:3])
+        raise CheckInputError(f"fun returned non-finite outputs at the base point ({shown}"
+                              + (" ..." if bad.size > 3 else "") + "); expected finite numbers")
+
+
+def _changed_leaves(after, base: np.ndarray, layout) -> list:
+    """Names of the parameters that a call changed in place (its copy of them)."""
+    try:
+        now, _ = flatten(after)
+    except Exception:  # noqa: BLE001 - a changed structure is a change too
+        return ["the structure of params"]
+    if now.shape != base.shape:
+        return ["the structure of params"]
+    return [leaf.name for leaf in layout.leaves
+            if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
+                                  base[leaf.offset:leaf.offset + leaf.size], equal_nan=True)]
+
+
+def _repeat_problem(first: np.ndarray, again: np.ndarray, names: list):
+    """The 'not deterministic' problem when two base calls differ, else None.
+
+    Each output is held to the rule a gradient check applies to its cost's two
+    base calls: a difference above REPEAT_TOLERANCE epsilons of the larger value."""
+    advice = ("Numeric derivatives of a random function are meaningless: seed its random "
+              "generator, fix the mini-batch, and switch off dropout or sampling before checking "
+              "the Jacobian")
+    if first.shape != again.shape:
+        return (f"the function is not deterministic: two calls at the same parameters returned "
+                f"{first.size} and {again.size} outputs. {advice}")
+    a, b = first.astype(complex), again.astype(complex)
+    size = np.maximum(np.abs(a), np.abs(b))
+    with np.errstate(invalid="ignore"):
+        diff = np.where(np.isnan(a) & np.isnan(b), 0.0, np.abs(a - b))
+    differs = ~(diff <= REPEAT_TOLERANCE * np.finfo(float).eps * size)
+    if not differs.any():
+        return None
+    k = int(np.flatnonzero(differs)[np.argmax(np.where(np.isnan(diff), np.inf,
+                                                          diff)[differs])])
+    relative = diff[k] / max(size[k], 1e-300)
+    return (f"the function is not deterministic: two calls at the same parameters returned "
+            f"different outputs ({int(differs.sum())} of {first.size} differ; {names[k]} was "
+            f"{first[k].item()!r} and then {again[k].item()!r}, difference {diff[k]:.3g}, "
+            f"relative {relative:.3g}). {advice}")
+
+
 def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
     """Compare an analytic Jacobian with numeric derivatives, entry by entry.
 
@@ -106,26 +200,48 @@ def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
     per flattened output and one column per flattened parameter coordinate.
     Options are compare_gradient's (vectorized costs are not supported here).
     Rows are named 'output wrt input', e.g. 'y[2] wrt W[1, 0]'.
+
+    The function is called twice at the base point, each time on its own copy of
+    params: outputs that differ fail the check (a random function), and a copy
+    it edited gives a note.  The output cache then starts from the first value,
+    so these two calls cost what the per-output checks would have spent there.
     """
     if options.get("vectorized"):
         raise CheckInputError("compare_jacobian: vectorized=True is not supported")
     if not callable(fun):
         raise CheckInputError(f"fun: expected a callable, got {type(fun).__name__}")
+    _check_options(options)
     base, layout = flatten(params)
-    try:
-        y0 = fun(rebuild(base.copy(), layout))
-    except Exception as exc:
-        raise CheckInputError(f"fun raised {type(exc).__name__} at the base point: {exc}") \
-            from exc
+    first_params = rebuild(base.copy(), layout)
+    y0 = _call_at_base(fun, first_params)
+    edited = _changed_leaves(first_params, base, layout)
+    first = _flat_values(y0)
+    again = _flat_values(_call_at_base(fun, rebuild(base.copy(), layout),
+                                       "at the base point, called a second time"),
+                         "at the base point, called a second time")
     names = _output_names(y0)
+    _check_finite_real(first, names)
     m, n = len(names), layout.size
     shapes = {(m, n)}
     if len(layout.leaves) == 1 and not isinstance(y0, (dict, list, tuple)):
         shapes.add(tuple(np.shape(y0)) + layout.leaves[0].shape)  # e.g. a Hessian (n, n)
     J = _analytic_jacobian(fun, params, jacobian, m, n, shapes)
+    notes = []
+    if edited:
+        notes.append(f"the function modifies its input in place (it changed {', '.join(edited)} "
+                     "during a call); every call here gets its own copy, so your arrays are "
+                     "unchanged, but code that reuses the arrays after calling the function is "
+                     "not")
+    problem = _repeat_problem(first, again, names)
+    if problem:  # a random function: no entry can be judged
+        return GradientReport(rows=[], method=str(options.get("method", "auto")), evaluations=2,
+                              total=m * n, notes=notes, problems=[problem],
+                              title="jacobian check", extra={"outputs": m, "inputs": n})
     cache = _OutputCache(fun)
-    rows, notes, hints, problems, methods = [], [], [], [], set()
+    cache.remember(rebuild(base.copy(), layout), first)
+    rows, hints, problems, methods = [], [], [], set()
     interrupted = False
+    part_notes = []
     for k in range(m):
         part = compare_gradient(cache.component(k), params, rebuild(J[k].copy(), layout),
                                 **options)
@@ -135,13 +251,15 @@ def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
             rows.append(Row(f"{names[k]} wrt {r.name}", r.parameter, r.index,
                             k * n + r.flat_index, r.analytic, r.numeric, r.abs_error,
                             r.rel_error, r.error_estimate, r.verdict, r.detail))
-        notes += [f"{names[k]}: {t}" for t in part.notes if f"{names[k]}: {t}" not in notes]
+        part_notes += [f"{names[k]}: {t}" for t in part.notes
+                       if f"{names[k]}: {t}" not in part_notes]
         hints += [f"{names[k]}: {t}" for t in part.hints]
         problems += [p for p in part.problems if p not in problems]
-    notes = _merge_repeated(notes, names)
+    notes += _merge_repeated(part_notes, names)
     a, nu = (np.array([getattr(r, f) for r in rows]) for f in ("analytic", "numeric"))
     rtol_s, atol_s = verdicts.suggest_tolerances(a, nu, np.array([r.verdict for r in rows]))
-    return GradientReport(rows=rows, method="/".join(sorted(methods)), evaluations=cache.calls + 1,
+    # the two base calls above, and the cache's calls everywhere else
+    return GradientReport(rows=rows, method="/".join(sorted(methods)), evaluations=cache.calls + 2,
                           total=m * n, hints=hints, notes=notes, problems=problems,
                           suggested_rtol=rtol_s, suggested_atol=atol_s,
                           interrupted=interrupted, title="jacobian check",

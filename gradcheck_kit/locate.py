@@ -115,6 +115,13 @@ def locate_mismatches(cost, params, gradient=None, *, seed=None, budget=None, ex
             f"the budget of {budget} evaluations ran out after {prober.probes} group probes: "
             f"{len(found)} wrong coordinates isolated so far, {left} coordinates not cleared")
     coords = np.unique(np.array(found, dtype=int))
+    if budget is not None:   # the confirmations are spent from the budget too
+        left = budget - setup.runner.evaluations
+        fit = max(0, left // len(stencils.OFFSETS[used]))
+        if fit < coords.size:
+            setup.problems.append(f"{coords.size - fit} isolated coordinates were not "
+                                  "confirmed on their own: the budget ran out")
+            coords = coords[:fit]
     h = plan.steps(used, setup.base, setup.layout, None, setup.eps)
     comparison = compare(setup, numeric_derivatives(setup, used, coords, h), analytic, None, None)
     setup.notes.append(f"group testing: {prober.probes} probes over {setup.base.size} "

@@ -1,4 +1,4 @@
-"""The pipeline: params -> tree -> plan -> evaluate -> stencils -> verdicts -> report.
+"""The pipeline: params -> tree -> plan -> evaluate -> stencils -> probes -> verdicts -> report.
 
 The public checks (`numeric_gradient`, `compare_gradient`, `estimate_noise`) run
 the stages in that order; this module wires them and computes no numerics of
@@ -12,8 +12,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import plan, stencils, verdicts
-from .analytic import analytic_vector
+from . import plan, probes, stencils, verdicts
+from .analytic import analytic_values
 from .errors import CheckInputError, CheckInterrupted
 from .evaluate import CostRunner
 from .report import GradientReport, Row
@@ -27,11 +27,16 @@ from .tree import Layout, coordinate_name, entry_name, flatten, leaf_eps, locate
 REFINE_ABOVE = 1e-7
 NOISY_ABOVE = 1e4        # relative noise this many epsilons above rounding counts as noise
 REPEAT_TOLERANCE = 10.0  # two calls at one point may differ by this many eps (threaded sums)
+# A stencil that meets a non-finite value (a log or sqrt stepped across 0) is redone with
+# its step cut by SHORTEN_BY, up to SHORTEN_TIMES times (2^-18 of the step at most), then
+# one-sided on the side where the cost is defined.
+SHORTEN_BY = 8.0
+SHORTEN_TIMES = 6
 
 
 @dataclass
 class Setup:
-    """What every check needs after the cost has run at the base point and its noise line."""
+    """What every check needs after the cost has run at the base point and its noise lines."""
     runner: CostRunner
     base: np.ndarray
     layout: Layout
@@ -43,11 +48,12 @@ class Setup:
     noisy: bool                  # noise well above rounding: steps were enlarged for it
     notes: list = field(default_factory=list)
     problems: list = field(default_factory=list)
+    lines: probes.Lines = None
 
 
 def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
             repeat=True) -> Setup:
-    """Check the inputs, call the cost at the base point (twice) and along the noise line."""
+    """Check the inputs, call the cost at the base point (twice) and along the noise lines."""
     if not callable(cost):
         raise CheckInputError(f"cost: expected a callable taking params, got "
                               f"{type(cost).__name__}")
@@ -70,21 +76,47 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
                 f"{abs(again - f0) / max(abs(f0), abs(again), 1e-300):.3g}). Numeric derivatives "
                 "of a random cost are meaningless: seed its random generator, fix the "
                 "mini-batch, and switch off dropout or sampling before checking the gradient")
+    notes += _non_finite_params_note(base, layout)
     scale = stencils.scale_of(base)
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
-    line = measure_line(runner, base, scale, f0, max(dtype_eps, float(np.max(leaf_eps(layout)))))
-    eps_f = relative_precision(runner.output_dtype, line.noise,
-                               float(np.max(np.abs(line.values), initial=abs(f0))))
+    lines = probes.measure_lines(runner, base, scale, f0,
+                                 max(dtype_eps, float(np.max(leaf_eps(layout)))))
+    line = lines.features
+    # Noise counts relative to the size of the cost's values, or of its variation over a
+    # coordinate's scale where larger: at a point where the cost is 0 (x |x| at 0), a
+    # tiny absolute level would otherwise pass for large relative noise.
+    size = max(float(np.max(np.abs(line.values), initial=abs(f0))), line.curvature_s2,
+               line.slope)
+    eps_f = probes.relative_precision(runner.output_dtype, line.noise, size)
     noisy = eps_f > NOISY_ABOVE * dtype_eps
     # Steps grow only for costs noisy well beyond rounding (More & Wild, ACM TOMS 38(3),
     # 2012); rounding-level noise enlarged by cancellation only enters the error estimates.
     eps = np.maximum(leaf_eps(layout), eps_f if noisy else dtype_eps)
     notes += precision_notes(runner.output_dtype, layout)
+    if lines.undefined:
+        notes.append("the cost is not finite (or fails) at some points of the noise probe near "
+                     "the base point: the noise level was measured on fewer points")
+    if lines.quantized:
+        notes.append("the cost's values are piecewise constant along a random line (they repeat "
+                      "exactly and jump in between): a rounded, integer-valued or quantized "
+                      "output, whose derivative is zero almost everywhere; numeric differences "
+                      "only measure its jumps")
     if noisy:
         notes.append(f"the cost is noisy: its values carry noise of about {line.noise:.2g} "
-                     f"({eps_f:.2g} relative, measured along a line after More & Wild); steps "
+                     f"({eps_f:.2g} relative, measured along two lines after More & Wild); steps "
                      "and error estimates allow for it")
-    return Setup(runner, base, layout, f0, eps_f, eps, scale, line, noisy, notes, problems)
+    return Setup(runner, base, layout, f0, eps_f, eps, scale, line, noisy, notes, problems,
+                 lines)
+
+
+def _non_finite_params_note(base, layout) -> list:
+    bad = np.flatnonzero(~np.isfinite(base))
+    if bad.size == 0:
+        return []
+    names = [coordinate_name(layout, int(i)) for i in bad]
+    return [f"params hold non-finite entries ({verdicts.name_list(names)}): the cost is "
+            "finite here, so it does not read them; their rows compare derivatives taken at a "
+            "non-finite point"]
 
 
 def precision_notes(output_dtype, layout: Layout) -> list:
@@ -100,85 +132,174 @@ def precision_notes(output_dtype, layout: Layout) -> list:
     return notes
 
 
-def relative_precision(dtype, noise: float, size: float) -> float:
-    """eps_f: the dtype's epsilon, or the measured noise relative to the size of the
-    cost's values near the point, where larger (capped at 1e-3: beyond that no step
-    gives a useful derivative anyway)."""
-    eps = float(np.finfo(dtype).eps)
-    relative = noise / size if size != 0 else 0.0
-    return float(min(max(eps, relative), max(eps, 1e-3)))
-
-
-def noise_direction(size: int, scale: np.ndarray, seed=0) -> np.ndarray:
-    """A random direction with entries of random sign and size between scale/4 and scale.
-
-    Entries are powers of two, so with a power-of-two spacing every point on the
-    line is exact even in float32 leaves: rounding the inputs would look like noise.
-    """
-    rng = np.random.default_rng(seed)
-    sign = rng.choice([-1.0, 1.0], size=size)
-    return sign * stencils.power_of_two(scale * rng.uniform(0.5, 1.0, size=size))
-
-
-def measure_line(runner: CostRunner, base, scale, f0, eps, seed=0) -> stencils.LineFeatures:
-    """Cost values at NOISE_POINTS equally spaced points along a random line."""
-    v = noise_direction(base.size, scale, seed)
-    t = stencils.noise_spacing(eps)
-    half = stencils.NOISE_POINTS // 2
-    offsets = [j * t for j in range(-half, half + 1) if j != 0]
-    run = runner.run([v] * len(offsets), offsets, label="noise probe")
-    if run.failures:
-        return stencils.LineFeatures.none()
-    values = np.concatenate([run.values[:half], [f0], run.values[half:]]).real
-    return stencils.line_features(values, t, float(np.sum((v / scale) ** 2)))
-
-
 @dataclass
 class Numeric:
     coords: np.ndarray
-    h: np.ndarray                # step of each coordinate (first pass)
-    values: np.ndarray           # (coordinates, offsets) cost values of the first pass
+    h: np.ndarray                # step of each coordinate (the pass its value came from)
+    values: np.ndarray           # (coordinates, offsets) cost values of that pass
     estimates: stencils.Estimates
     failed: np.ndarray           # a stencil point raised for this coordinate
     details: list                # text per coordinate ("" when fine)
     done: np.ndarray             # finished before an interrupt
     method: str
+    undefined: list = field(default_factory=list)   # coordinates that met non-finite values
 
 
 def numeric_derivatives(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray,
                         refine: bool = True) -> Numeric:
-    """Numeric derivatives at `coords`; fourth-order methods refine badly scaled ones once."""
-    numeric = _one_pass(setup, method, coords, h)
-    if method not in stencils.REFINABLE or not refine or setup.runner.interrupted:
+    """Numeric derivatives at `coords`; non-finite stencil points are redone with shorter
+    or one-sided steps, and fourth-order methods refine badly scaled coordinates once."""
+    numeric = _one_pass(setup, method, coords, h[coords])
+    if setup.runner.interrupted:
         return numeric
+    _redo_undefined(setup, numeric)
+    if method in stencils.REFINABLE and refine and not setup.runner.interrupted:
+        _refine(setup, numeric)
+    return numeric
+
+
+def _refine(setup: Setup, numeric: Numeric) -> None:
     est = numeric.estimates
     terms = term_scale(setup, numeric)
-    redo = (est.gap > REFINE_ABOVE * terms) & (est.gap > 64 * est.rounding) & ~numeric.failed
+    finite = np.isfinite(numeric.values.real).all(axis=1)
+    # The step balance uses the plain rounding bound of the stencil's values, not the
+    # margins the error estimate adds (stencils.SUM_ROUNDING and the terms' rounding).
+    rounding = stencils.VALUE_ROUNDING[numeric.method] * est.noise / numeric.h
+    redo = (est.gap > REFINE_ABOVE * terms) & (est.gap > 64 * rounding) & \
+        ~numeric.failed & finite
     if not redo.any():
-        return numeric
+        return
     idx = np.flatnonzero(redo)
-    h2 = h.copy()
-    h2[coords[idx]] = stencils.refined_steps(est.take(idx), h[coords[idx]])
-    second = _one_pass(setup, method, coords[idx], h2)
-    ok = ~second.failed & second.done
-    use = stencils.pick_refined(est.take(idx), second.estimates, terms[idx]) & ok
+    balance = est.take(idx)
+    balance.rounding = rounding[idx]
+    h2 = stencils.refined_steps(balance, numeric.h[idx])
+    second = _one_pass(setup, numeric.method, numeric.coords[idx], h2)
+    ok = ~second.failed & second.done & np.isfinite(second.values.real).all(axis=1)
+    plain = second.estimates.take(np.arange(idx.size))
+    plain.rounding = stencils.VALUE_ROUNDING[numeric.method] * plain.noise / h2
+    use = stencils.pick_refined(balance, plain, terms[idx]) & ok
     first_d = est.derivative[idx].copy()
     est.put(idx[use], second.estimates.take(np.flatnonzero(use)))
+    numeric.h[idx[use]] = h2[use]
+    numeric.values[idx[use]] = second.values[use]
     # The chosen value's error: the distance between the two values, or its own modelled
     # truncation (plus its rounding, kept), whichever is larger.
     chosen = est.take(idx)
     modelled = stencils.extrapolation_error(chosen, terms[idx]) - chosen.rounding
     distance = np.abs(first_d - second.estimates.derivative)
     est.truncation[idx[ok]] = np.maximum(distance, modelled)[ok]
-    return numeric
+
+
+def _redo_undefined(setup: Setup, numeric: Numeric) -> None:
+    """Coordinates whose stencil met a non-finite value: shorter steps, then one side.
+
+    Only these coordinates are redone; the others keep their values untouched.
+    """
+    if numeric.method == "complex-step":
+        return
+    bad = np.flatnonzero(~np.isfinite(numeric.values).all(axis=1) & ~numeric.failed &
+                         numeric.done)
+    if bad.size == 0:
+        return
+    first_values = numeric.values[bad].copy()
+    h = numeric.h[bad].copy()
+    todo = np.ones(bad.size, dtype=bool)
+    for _ in range(SHORTEN_TIMES):
+        if not todo.any() or setup.runner.interrupted:
+            break
+        h[todo] /= SHORTEN_BY
+        k = np.flatnonzero(todo)
+        again = _one_pass(setup, numeric.method, numeric.coords[bad[k]], h[k])
+        fine = np.isfinite(again.values).all(axis=1) & ~again.failed & again.done
+        _adopt(numeric, bad[k[fine]], again, np.flatnonzero(fine))
+        # The first finite step may still reach close to where the cost is undefined (its
+        # derivatives grow fast there): one step shorter again is used, trusted to within
+        # the distance between the two values scaled by the stencil's order.
+        k_fine = k[fine]
+        if k_fine.size:
+            inner = _one_pass(setup, numeric.method, numeric.coords[bad[k_fine]],
+                              h[k_fine] / SHORTEN_BY)
+            ok = np.isfinite(inner.values).all(axis=1) & ~inner.failed & inner.done
+            shrink = SHORTEN_BY ** stencils.ORDER[numeric.method] - 1
+            distance = np.abs(inner.estimates.derivative -
+                              numeric.estimates.derivative[bad[k_fine]])
+            inner.estimates.truncation = np.maximum(inner.estimates.truncation,
+                                                    2 * distance / shrink)
+            _adopt(numeric, bad[k_fine[ok]], inner, np.flatnonzero(ok))
+            h[k_fine[ok]] /= SHORTEN_BY
+        for j, i in zip(bad[k[fine]], k[fine]):
+            numeric.details[j] = (f"the cost is not finite at {_offsets_text(numeric, first_values[i], j)}"
+                                  f": step shortened to {h[i]:.3g}")
+        todo[k[fine]] = False
+    rest = bad[todo]
+    if rest.size and not setup.runner.interrupted:
+        _one_sided(setup, numeric, rest, first_values[todo])
+    numeric.undefined = [int(numeric.coords[j]) for j in bad]
+
+
+def _offsets_text(numeric: Numeric, values, j) -> str:
+    offsets = np.array(stencils.OFFSETS[numeric.method]) * numeric.h[j]
+    where = [f"{o:+.3g}" for o, v in zip(offsets, values) if not np.isfinite(v)]
+    return "x" + ", x".join(where)
+
+
+def _adopt(numeric: Numeric, positions, other: Numeric, from_positions) -> None:
+    """Take `other`'s results at from_positions into numeric at positions."""
+    if len(positions) == 0:
+        return
+    numeric.estimates.put(positions, other.estimates.take(from_positions))
+    numeric.h[positions] = other.h[from_positions]
+    numeric.values[positions] = other.values[from_positions]
+
+
+def _one_sided(setup: Setup, numeric: Numeric, positions, first_values) -> None:
+    """One-sided differences at steps h and h/2 on the side where the cost was finite,
+    extrapolated: 2 D(h/2) - D(h), trusted to |D(h/2) - D(h)| plus rounding."""
+    offsets = np.array(stencils.OFFSETS[numeric.method])
+    h = numeric.h[positions]
+    sides = []
+    for values in first_values:
+        finite_plus = np.isfinite(values[offsets > 0]).all()
+        finite_minus = np.isfinite(values[offsets < 0]).all()
+        sides.append(1.0 if finite_plus or not finite_minus else -1.0)
+    sides = np.array(sides)
+    coords = numeric.coords[positions]
+    where = np.repeat(coords, 2).tolist()
+    amounts = (np.stack([sides * h, sides * h / 2], axis=1)).ravel().tolist()
+    run = setup.runner.run(where, amounts, label="one-sided differences")
+    v = run.values.real.reshape(-1, 2)
+    far = sides * (v[:, 0] - setup.f0) / h
+    near = sides * (v[:, 1] - setup.f0) / (h / 2)
+    d = 2 * near - far
+    noise = np.maximum(setup.eps_f * np.max(np.abs(v), axis=1, initial=abs(setup.f0)),
+                       setup.line.noise)
+    for k, j in enumerate(positions):
+        side = "forward" if sides[k] > 0 else "backward"
+        ok = np.isfinite(v[k]).all() and not any(2 * k + r in run.failures for r in (0, 1))
+        est = numeric.estimates
+        if ok:
+            est.derivative[j], est.truncation[j] = d[k], abs(near[k] - far[k])
+            est.rounding[j], est.gap[j], est.curvature[j] = 10 * noise[k] / h[k], 0.0, 0.0
+            numeric.details[j] = (f"the cost is not finite at "
+                                  f"{_offsets_text(numeric, first_values[k], j)}: {side} "
+                                  "differences used")
+        else:
+            est.derivative[j] = np.nan
+            numeric.details[j] = (f"the cost is not finite near here (at "
+                                  f"{_offsets_text(numeric, first_values[k], j)}, and on both "
+                                  "sides at every shorter step tried)")
 
 
 def _one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Numeric:
-    where, amounts = plan.requests(method, coords, h)
+    """One stencil per coordinate; h is aligned with coords."""
+    full = np.zeros(setup.base.size)
+    full[coords] = h
+    where, amounts = plan.requests(method, coords, full)
     with warnings.catch_warnings():
         if method == "complex-step":  # a cast that drops the imaginary part is an error here
             warnings.simplefilter("error", np.exceptions.ComplexWarning)
-        results = setup.runner.run(where, amounts, label=f"{method} differences")
+        with np.errstate(all="ignore"):
+            results = setup.runner.run(where, amounts, label=f"{method} differences")
     k = len(stencils.OFFSETS[method])
     values = results.values.reshape(len(coords), k)
     failed = np.zeros(len(coords), dtype=bool)
@@ -192,9 +313,10 @@ def _one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> N
     if not results.interrupted:
         done[:] = True
     s = setup.scale[coords]
-    est = stencils.combine(method, values, setup.f0, h[coords], setup.eps_f, s, setup.line.noise,
-                           setup.line.curvature_s2 / s ** 2, 8 * setup.line.third / s ** 3)
-    return Numeric(coords, h[coords], values, est, failed, details, done, method)
+    with np.errstate(all="ignore"):
+        est = stencils.combine(method, values, setup.f0, h, setup.eps_f, s, setup.line.noise,
+                               setup.line.curvature_s2 / s ** 2, 8 * setup.line.third / s ** 3)
+    return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
 
 
 def term_scale(setup: Setup, numeric: Numeric) -> np.ndarray:
@@ -205,49 +327,46 @@ def term_scale(setup: Setup, numeric: Numeric) -> np.ndarray:
     return verdicts.term_scale(est.derivative, setup.f0, s, seen)
 
 
-def resolve_method(setup: Setup, method: str, seed) -> str:
+def resolve_method(setup: Setup, method: str, seed, complex_safe=None) -> str:
     """'auto': the complex step where a probe shows the cost is complex-safe, else Richardson.
 
     A noisy cost gets Richardson with noise-sized steps: the complex step would
-    differentiate the noise itself."""
-    if method != "auto":
+    differentiate the noise itself.  A requested complex step is probed too: where
+    the cost is not complex-safe it falls back to Richardson, with a warning, unless
+    complex_safe=True (the caller vouches for the cost).  complex_safe=False rules the
+    complex step out for 'auto'.
+    """
+    if method not in ("auto", "complex-step"):
         return method
-    if setup.noisy:
+    if complex_safe is True:
+        return "complex-step"
+    if method == "auto" and complex_safe is False:
+        setup.notes.append("method auto chose richardson: complex_safe=False")
+        return "richardson"
+    if method == "auto" and setup.noisy:
         setup.notes.append("method auto chose richardson: the cost is noisy")
         return "richardson"
-    safe, reason = probe_complex_safety(setup, seed)
-    if not safe:
+    safe, reason = probes.complex_safety(setup.runner, setup.base, setup.scale, setup.f0,
+                                         setup.eps_f, setup.eps, setup.line.noise, seed)
+    if safe:
+        return "complex-step"
+    if method == "auto":
         setup.notes.append(f"method auto chose richardson: {reason}")
-    return "complex-step" if safe else "richardson"
-
-
-def probe_complex_safety(setup: Setup, seed) -> tuple:
-    """One complex-step and four real evaluations along a random direction."""
-    rng = np.random.default_rng(seed if seed is not None else 0)
-    z = rng.standard_normal(setup.base.size)
-    v = z * setup.scale / np.max(np.abs(z))
-    hc = stencils.COMPLEX_STEP
-    with warnings.catch_warnings():
-        warnings.simplefilter("error", np.exceptions.ComplexWarning)
-        complex_run = setup.runner.run([v], [1j * hc], label="complex-step probe")
-    if complex_run.failures:
-        exc = next(iter(complex_run.failures.values()))
-        return False, f"the cost fails at a complex point ({type(exc).__name__}: {exc})"
-    t = float(stencils.power_of_two(np.array(np.max(setup.eps) ** (1 / 3))))
-    real_run = setup.runner.run([v] * 4, [t, -t, 2 * t, -2 * t], label="complex-step probe")
-    if real_run.failures:
-        return False, "the cost fails near the base point"
-    return stencils.complex_probe_agrees(complex_run.values[0], real_run.values, setup.f0, hc, t,
-                                         setup.eps_f)
+    else:
+        message = (f"method complex-step was asked for, but {reason}; richardson was used "
+                   "instead (pass complex_safe=True to insist on the complex step)")
+        warnings.warn(message, RuntimeWarning, stacklevel=3)
+        setup.notes.append(message)
+    return "richardson"
 
 
 def numeric_gradient(cost, params, *, method="central", step=None, vectorized=False,
-                     executor=None):
+                     executor=None, complex_safe=None):
     """Numerical gradient of a scalar cost, in the structure (and float dtypes) of params."""
     plan.check_method(method)
-    plan.check_flags(vectorized=vectorized)
+    plan.check_flags(vectorized=vectorized, complex_safe=complex_safe)
     setup = prepare(cost, params, vectorized=vectorized, executor=executor, repeat=False)
-    method = resolve_method(setup, method, None)
+    method = resolve_method(setup, method, None, complex_safe)
     coords = np.arange(setup.layout.size)
     h = plan.steps(method, setup.base, setup.layout, step, setup.eps)
     numeric = numeric_derivatives(setup, method, coords, h, refine=step is None)
@@ -269,36 +388,50 @@ class Comparison:
     details: list
 
 
-def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol) -> Comparison:
+def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
+            analytic_eps=None) -> Comparison:
+    """Verdicts for one set of numeric derivatives.  analytic_eps: the precision of the
+    analytic values (float64's epsilon when None)."""
     a = analytic[numeric.coords]
     est = numeric.estimates
-    allowed = verdicts.allowed_difference(a, est.derivative, est.error,
-                                          terms=term_scale(setup, numeric), eps_f=setup.eps_f,
-                                          rtol=rtol, atol=atol)
-    verdict = verdicts.decide(a, est.derivative, allowed, numeric.failed)
-    kinks = stencils.find_kinks(numeric.method, numeric.values, setup.f0, numeric.h, est.noise)
+    terms = term_scale(setup, numeric)
+    with np.errstate(all="ignore"):
+        allowed = verdicts.allowed_difference(a, est.derivative, est.error, terms=terms,
+                                              eps_f=setup.eps_f, rtol=rtol, atol=atol,
+                                              eps_a=analytic_eps)
+        verdict = verdicts.decide(a, est.derivative, allowed, numeric.failed)
+        kinks = stencils.find_kinks(numeric.method, numeric.values, setup.f0, numeric.h,
+                                    est.noise)
     details = list(numeric.details)
     verdict = verdicts.apply_kinks(verdict, a, kinks, allowed, details)
-    if setup.noisy:
-        verdict = verdicts.mark_noisy(verdict, a, est, details, setup.line.noise)
+    if rtol is None and atol is None:
+        verdict = verdicts.mark_undecided(verdict, a, est, terms, details, setup.noisy,
+                                          setup.line.noise)
     return Comparison(numeric, analytic, allowed, verdict, kinks, details)
 
 
-def second_opinion(setup: Setup, first: Comparison, rtol, atol) -> Comparison:
-    """Recheck complex-step mismatches with real Richardson differences.
+def second_opinion(setup: Setup, first: Comparison, rtol, atol, requested: str,
+                   analytic_eps=None) -> Comparison:
+    """Recheck mismatches with real Richardson differences (four evaluations each).
 
-    The complex step cannot see a kink (it never leaves the point) and is wrong
-    where a cost is complex-safe in general but not in one coordinate; four real
-    evaluations per mismatch settle both.  Coordinates that Richardson passes,
-    or finds at a kink, take its verdict; the rest keep the complex step's.
+    Central, one-sided and complex-step stencils cannot tell a kink from a wrong
+    value (the complex step never leaves the point), and a one-sided or central
+    difference may carry more step error than its model allows where the cost
+    curves fast; the complex step is wrong where a cost is complex-safe in general
+    but not in one coordinate.  So every such method's mismatches are rechecked:
+    where Richardson agrees, or finds a kink with the analytic value between the
+    one-sided slopes, that verdict (and its numbers) settles the row: a false
+    alarm costs a user more than four evaluations.
     """
-    bad = np.flatnonzero(np.isin(first.verdict, ("disagree", "non-finite")))
-    if first.numeric.method != "complex-step" or bad.size == 0 or setup.runner.interrupted:
+    method = first.numeric.method
+    failing = ("disagree", "non-finite") if method == "complex-step" else ("disagree",)
+    bad = np.flatnonzero(np.isin(first.verdict, failing))
+    if method in stencils.REFINABLE or bad.size == 0 or setup.runner.interrupted:
         return first
     coords = first.numeric.coords[bad]
     h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
     again = compare(setup, numeric_derivatives(setup, "richardson", coords, h),
-                    first.analytic, rtol, atol)
+                    first.analytic, rtol, atol, analytic_eps)
     settled = np.isin(again.verdict, ("agree", "kink"))
     if not settled.any():
         return first
@@ -308,10 +441,13 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol) -> Comparison:
     first.allowed[bad[settled]] = again.allowed[settled]
     for j, k in zip(bad[settled], np.flatnonzero(settled)):
         first.details[j] = again.details[k] or "decided by real differences"
-    names = [coordinate_name(setup.layout, int(c)) for c in coords[settled]]
-    setup.notes.append(f"{len(names)} coordinates where the complex step disagreed were "
-                       f"rechecked with real differences and pass: {', '.join(names[:5])}"
-                       + (" ..." if len(names) > 5 else ""))
+    agreed = [coordinate_name(setup.layout, int(c))
+              for c, v in zip(coords[settled], again.verdict[settled]) if v == "agree"]
+    if agreed:
+        setup.notes.append(f"{len(agreed)} coordinates where the {method} differences "
+                           f"disagreed were "
+                           f"rechecked with real differences and pass: "
+                           f"{verdicts.name_list(agreed)}")
     return first
 
 
@@ -326,58 +462,41 @@ def rows_of(setup: Setup, comp: Comparison) -> list:
         if not num.done[j]:
             continue
         leaf, index = locate(setup.layout, int(flat))
-        rows.append(Row(entry_name(leaf, index), leaf.name, index, int(flat), float(a[j]), float(n[j]),
-                        float(abs(a[j] - n[j])), float(rel[j]), float(err[j]),
+        rows.append(Row(entry_name(leaf, index), leaf.name, index, int(flat), float(a[j]),
+                        float(n[j]), float(abs(a[j] - n[j])), float(rel[j]), float(err[j]),
                         str(comp.verdict[j]), comp.details[j]))
     return rows
 
 
-def descent_note(setup: Setup, analytic: np.ndarray):
-    """A small step against a nonzero gradient must lower the cost (2 evaluations).
-
-    The step moves each coordinate by at most 1e-4 of its scale; a change below
-    the cost's noise proves nothing and is not reported.
-    """
-    g = analytic
-    size = float(np.max(np.abs(g) * setup.scale)) if np.all(np.isfinite(g)) else 0.0
-    if size == 0.0:
-        return None
-    t = 1e-4 / size
-    run = setup.runner.run([-g * setup.scale ** 2, g * setup.scale ** 2], [t, t],
-                           label="descent check")
-    if run.failures:
-        return None
-    down, up = run.values.real - setup.f0
-    expected = t * float(np.sum((g * setup.scale) ** 2))
-    resolvable = expected > 100 * max(setup.line.noise, setup.eps_f * abs(setup.f0))
-    if resolvable and down > 0 and up < 0:
-        return ("descent: a small step against the analytic gradient raises the cost and a step "
-                "along it lowers it: it points uphill, so gradient descent would climb")
-    return None
-
-
 def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, rtol=None,
                      atol=None, coordinates=None, seed=None, executor=None, vectorized=False,
-                     progress=None) -> GradientReport:
+                     progress=None, complex_safe=None,
+                     allow_undecided=False) -> GradientReport:
     """Compare the analytic gradient with numeric derivatives, coordinate by coordinate."""
     plan.check_method(method)
-    plan.check_flags(seed=seed, progress=progress, vectorized=vectorized)
+    plan.check_flags(seed=seed, progress=progress, vectorized=vectorized,
+                     complex_safe=complex_safe, allow_undecided=allow_undecided)
     rtol = plan.check_tolerance(rtol, "rtol")
     atol = plan.check_tolerance(atol, "atol")
     setup = prepare(cost, params, vectorized=vectorized, executor=executor, progress=progress)
-    analytic = analytic_vector(cost, setup.base, setup.layout, gradient, vectorized)
+    analytic, analytic_eps = analytic_values(cost, setup.base, setup.layout, gradient,
+                                             vectorized)
     if setup.problems:  # a random cost: no coordinate can be judged
         return GradientReport(rows=[], method=method, evaluations=setup.runner.evaluations,
                               total=setup.layout.size, notes=setup.notes,
                               problems=setup.problems)
+    if probes.flat_but_sloped(setup.lines, analytic, setup.f0):
+        setup.notes.append("the cost does not change along a random line through the point "
+                           "although the analytic gradient says it should: it is piecewise "
+                           "constant (rounded or quantized) here, or the gradient is wrong")
     coords = plan.choose_coordinates(setup.layout, coordinates, seed, analytic)
-    used = resolve_method(setup, method, seed)
+    used = resolve_method(setup, method, seed, complex_safe)
     h = plan.steps(used, setup.base, setup.layout, step, setup.eps)
     numeric = numeric_derivatives(setup, used, coords, h, refine=step is None)
-    comp = compare(setup, numeric, analytic, rtol, atol)
-    if method == "auto":
-        comp = second_opinion(setup, comp, rtol, atol)
-    report = finish(setup, comp, used)
+    comp = compare(setup, numeric, analytic, rtol, atol, analytic_eps)
+    comp = second_opinion(setup, comp, rtol, atol, method, analytic_eps)
+    report = finish(setup, comp, used, analytic_eps=analytic_eps,
+                    allow_undecided=allow_undecided)
     report.source = Source(setup, analytic, h, used)
     if report.interrupted:
         # Ctrl-C: show what was finished, then let the interrupt go on
@@ -386,7 +505,8 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
     return report
 
 
-def finish(setup: Setup, comp: Comparison, method: str, title="gradient check"):
+def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
+           analytic_eps=None, allow_undecided=False):
     """Rows, hints, notes and suggested tolerances: the report of one comparison."""
     rows = rows_of(setup, comp)
     done = comp.numeric.done
@@ -396,23 +516,39 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check"):
     hints = verdicts.hints(setup.layout, comp.numeric.coords[done], a[done], n[done],
                            comp.verdict[done], comp.allowed[done])
     notes = list(setup.notes)
+    problems = list(setup.problems)
+    if analytic_eps is not None and analytic_eps > np.finfo(np.float64).eps:
+        notes.append(f"the analytic gradient holds values of lower precision (eps "
+                     f"{analytic_eps:.3g}): the allowance includes their rounding, so agreement "
+                     "means less than in float64")
+    if comp.numeric.undefined:
+        names = [coordinate_name(setup.layout, c) for c in comp.numeric.undefined]
+        notes.append(f"the cost is not finite at some stencil points of {len(names)} "
+                     f"coordinates ({verdicts.name_list(names)}): those were redone with shorter "
+                     "steps or one-sided differences (see their rows); the others are unaffected")
     kinked = [r.name for r in rows if r.verdict == "kink"]
     if kinked:
         notes.append(f"{len(kinked)} coordinates sit on a kink, where the cost has two one-sided "
-                     f"slopes and the analytic value lies between them: {', '.join(kinked[:5])}"
-                     + (" ..." if len(kinked) > 5 else "") + "; a kink does not fail the check")
-    noisy = [r.name for r in rows if r.verdict == "noisy"]
-    if noisy:
-        notes.append(f"{len(noisy)} coordinates could not be decided: the cost's noise "
-                     f"(about {setup.line.noise:.2g}) swamps their derivative at every step: "
-                     f"{', '.join(noisy[:5])}" + (" ..." if len(noisy) > 5 else ""))
+                     f"slopes and the analytic value lies between them: "
+                     f"{verdicts.name_list(kinked)}; a kink does not fail the check")
+    undecided = [r.name for r in rows if r.verdict == "noisy"]
+    if undecided:
+        notes.append(f"{len(undecided)} coordinates could not be decided: the numeric "
+                     f"derivative's error estimate is as large as the values (cost noise about "
+                     f"{setup.line.noise:.2g}): {verdicts.name_list(undecided)}")
+    if rows and len(undecided) == len(rows) and not allow_undecided:
+        problems.append(f"no coordinate could be decided: all {len(rows)} are undecided "
+                        "(noisy), so nothing was checked; make the cost deterministic and "
+                        "smooth at this point, or pass allow_undecided=True to accept this")
     if any(r.failing for r in rows) and not setup.runner.interrupted:
-        note = descent_note(setup, comp.analytic)
-        if note:
-            hints.append(note)
+        if probes.descent_uphill(setup.runner, comp.analytic, setup.scale, setup.f0,
+                                 setup.line.noise, setup.eps_f):
+            hints.append("descent: a small step against the analytic gradient raises the cost "
+                         "and a step along it lowers it: it points uphill, so gradient descent "
+                         "would climb")
     return GradientReport(rows=rows, method=method, evaluations=setup.runner.evaluations,
                           total=setup.layout.size, hints=hints, notes=notes,
-                          problems=setup.problems, suggested_rtol=rtol_s,
+                          problems=problems, suggested_rtol=rtol_s,
                           suggested_atol=atol_s, interrupted=setup.runner.interrupted,
                           title=title)
 
@@ -431,8 +567,8 @@ class NoiseEstimate:
     level: float          # absolute noise of one cost value (a standard deviation)
     relative: float       # level / |f(params)|
     order: int            # difference order the estimate came from (0: no noise seen)
-    values: np.ndarray    # the cost values along the line
-    spacing: float        # the line's spacing, relative to each coordinate's scale
+    values: np.ndarray    # the cost values along the first line
+    spacing: float        # the first line's spacing, relative to each coordinate's scale
     evaluations: int
 
 

@@ -35,14 +35,18 @@ def check_tolerance(value, name):
     return float(value)
 
 
-def check_flags(*, seed=None, progress=None, vectorized=False) -> None:
-    """seed: None or an int; progress: None or a bool; vectorized: a bool."""
+def check_flags(*, seed=None, progress=None, vectorized=False, complex_safe=None,
+                allow_undecided=False) -> None:
+    """seed: None or an int; progress, complex_safe: None or a bool; the rest bools."""
     if seed is not None and (isinstance(seed, bool) or not isinstance(seed, numbers.Integral)):
         raise CheckInputError(f"seed: expected an int or None, got {seed!r}")
     if progress is not None and not isinstance(progress, bool):
         raise CheckInputError(f"progress: expected True, False or None, got {progress!r}")
-    if not isinstance(vectorized, bool):
-        raise CheckInputError(f"vectorized: expected True or False, got {vectorized!r}")
+    if complex_safe is not None and not isinstance(complex_safe, bool):
+        raise CheckInputError(f"complex_safe: expected True, False or None, got {complex_safe!r}")
+    for name, value in (("vectorized", vectorized), ("allow_undecided", allow_undecided)):
+        if not isinstance(value, bool):
+            raise CheckInputError(f"{name}: expected True or False, got {value!r}")
 
 
 def _leaf_indices(leaf, spec, name):

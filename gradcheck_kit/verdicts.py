@@ -36,10 +36,17 @@ def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
     return np.maximum(np.maximum(largest, abs(f0) / scale), curvature_times_scale)
 
 
-def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None):
-    """How far apart analytic and numeric may be, per coordinate (see module text)."""
+def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None,
+                       eps_a=None):
+    """How far apart analytic and numeric may be, per coordinate (see module text).
+
+    eps_a is the precision of the analytic values themselves (a float32 gradient of a
+    float64 cost carries float32 rounding); the larger of eps_f and eps_a sets the
+    share allowed for rounding in the analytic gradient.
+    """
     if rtol is None and atol is None:
-        share = min(ANALYTIC_ROUNDING * eps_f, ANALYTIC_ROUNDING_CAP)
+        eps = max(eps_f, eps_a or 0.0)
+        share = min(ANALYTIC_ROUNDING * eps, ANALYTIC_ROUNDING_CAP)
         return SAFETY * error + share * (np.abs(analytic) + terms)
     return (atol or 0.0) + (rtol or 0.0) * np.abs(numeric)
 
@@ -99,22 +106,38 @@ def apply_kinks(verdict, analytic, kinks, allowed, details) -> np.ndarray:
         if verdict[j] in ("error", "non-finite"):
             continue
         low, high = kinks.low[j], kinks.high[j]
-        inside = low - allowed[j] <= analytic[j] <= high + allowed[j]
+        margin = allowed[j] + kinks.slack[j]
+        inside = low - margin <= analytic[j] <= high + margin
         verdict[j] = "kink" if inside else "disagree"
         where = "between" if inside else "outside"
         details[j] = f"kink: analytic {where} the one-sided slopes {low:.6g} and {high:.6g}"
     return verdict
 
 
-def mark_noisy(verdict, analytic, est, details, noise_level) -> np.ndarray:
-    """'noisy' where noise leaves a coordinate undecidable: its error estimate, mostly
-    noise, is at least half the derivative itself, so agreement would mean nothing."""
+# A row whose allowance comes from the numeric error estimate and reaches this share of
+# the values decides nothing: 'agree' there would pass a relative error near 1.
+UNDECIDED_SHARE = 0.5
+# ... unless both values are this small next to the terms the entry is summed from.
+NEGLIGIBLE = 1e-3
+
+
+def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -> np.ndarray:
+    """'noisy' (undecided) where an agreeing row's numeric derivative is too uncertain
+    to mean anything: its error estimate is at least half the values, and either the
+    cost is noisy and noise dominates the estimate, or the two values differ by half
+    their size or more (a quantized cost, a step far too long).  Values that are both
+    tiny next to the terms they are summed from (a gradient entry near zero at a
+    minimiser: below NEGLIGIBLE of their terms) agree and stay."""
     verdict = verdict.copy()
     size = np.maximum(np.abs(analytic), np.abs(est.derivative))
-    swamped = (est.error >= 0.5 * size) & (est.rounding >= est.truncation) & (verdict == "agree")
-    for j in np.flatnonzero(swamped):
+    far = (relative_error(analytic, est.derivative) >= UNDECIDED_SHARE) & \
+        ~(size <= NEGLIGIBLE * terms)
+    swamped = (est.error >= UNDECIDED_SHARE * size) & (est.rounding >= est.truncation) & noisy
+    undecided = (verdict == "agree") & (far | swamped)
+    for j in np.flatnonzero(undecided):
         verdict[j] = "noisy"
-        details[j] = f"noise {noise_level:.2g} swamps this derivative"
+        details[j] = (f"noise {noise_level:.2g} swamps this derivative" if swamped[j] else
+                      f"undecided: the numeric value is known only to within {est.error[j]:.2g}")
     return verdict
 
 
@@ -123,9 +146,14 @@ def _close(x, y, tol):
     return np.abs(x - y) <= tol + 1e-6 * np.maximum(np.abs(x), np.abs(y))
 
 
-def _list(names, limit=4):
+def name_list(names, limit=4) -> str:
+    """'a, b, c, d and 3 more': the names of coordinates in one sentence."""
+    names = list(names)
     shown = ", ".join(names[:limit])
     return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
+
+
+_list = name_list
 
 
 def _describe_factor(c: float) -> str:

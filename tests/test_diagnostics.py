@@ -103,12 +103,27 @@ def test_noisy_cost_right_gradient_passes_and_one_percent_bug_is_caught():
 
 
 def test_undecidable_coordinates_are_noisy_not_agree():
-    cost = noisy_bowl(1e-4)
-    x = np.array([0.4, -0.7, 1e-7, 0.2])    # d/dx2 ~ 1e-14 is far below what 1e-4 noise allows
+    cost = noisy_bowl(1e-6)
+    x = np.array([0.4, -0.7, 1e-7, 0.2])    # d/dx2 ~ 1e-14 is far below what 1e-6 noise allows
     report = gk.compare_gradient(cost, x, bowl_grad)
     row = next(r for r in report.rows if r.name == "x[2]")
-    assert row.verdict == "noisy" and report.passed
+    assert row.verdict == "noisy" and report.passed, report.to_text()
+    assert any(r.verdict == "agree" for r in report.rows)
     assert any("could not be decided" in n for n in report.notes)
+
+
+def test_a_check_in_which_nothing_is_decided_does_not_pass():
+    """Issue 9, item 7: with noise 1e-3 no coordinate of this bowl can be decided; the
+    check fails with one plain sentence unless the caller accepts undecided rows."""
+    cost = noisy_bowl(1e-3)
+    x = np.array([0.4, -0.7, 1e-7, 0.2])
+    wrong = lambda x: 5 * bowl_grad(x)      # noqa: E731 - 5x off: must never pass
+    report = gk.compare_gradient(cost, x, bowl_grad)
+    assert {r.verdict for r in report.rows} == {"noisy"}, report.to_text()
+    assert not report.passed
+    assert any("no coordinate could be decided" in p for p in report.problems)
+    assert not gk.compare_gradient(cost, x, wrong).passed
+    assert gk.compare_gradient(cost, x, bowl_grad, allow_undecided=True).passed
 
 
 # --- precision ----------------------------------------------------------------------------

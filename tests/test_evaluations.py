@@ -1,14 +1,14 @@
 """Evaluations are counted honestly: the report's count is the number of cost calls,
 and each method spends what it promises (n, 2n, 4n) plus a small constant of probes:
-the base point twice (a random cost is caught by the repeat), 8 points on the noise
-line, and 5 for the complex-safety probe of auto."""
+the base point twice (a random cost is caught by the repeat), 8 points on each of the
+two noise lines, and 6 for the complex-safety probe (auto, and a requested complex step)."""
 import numpy as np
 import pytest
 
 import gradcheck_kit as gk
 
-PROBES = 2 + 8          # base point twice, noise line
-AUTO_PROBE = 5          # one complex point, four real ones
+PROBES = 2 + 2 * 8      # base point twice, two noise lines
+AUTO_PROBE = 6          # two complex points, four real ones
 
 
 class Counted:
@@ -41,7 +41,8 @@ def test_each_method_spends_what_it_promises(method, per_coordinate):
     cost = Counted(smooth)
     report = gk.compare_gradient(cost, X, grad, method=method)
     assert report.passed
-    assert report.evaluations == cost.calls == per_coordinate * X.size + PROBES
+    probe = AUTO_PROBE if method == "complex-step" else 0
+    assert report.evaluations == cost.calls == per_coordinate * X.size + PROBES + probe
 
 
 def test_auto_on_a_complex_safe_cost_spends_n_plus_probes():
@@ -52,11 +53,11 @@ def test_auto_on_a_complex_safe_cost_spends_n_plus_probes():
 
 
 def test_auto_on_a_real_only_cost_spends_4n_plus_probes():
-    """Here the probe stops after its complex point, whose value came back real."""
+    """Here the probe stops after its complex points, whose values came back real."""
     cost = Counted(smooth_real_only)
     report = gk.compare_gradient(cost, X, grad)
     assert report.method == "richardson" and report.passed, report.to_text()
-    assert report.evaluations == cost.calls == 4 * X.size + PROBES + 1
+    assert report.evaluations == cost.calls == 4 * X.size + PROBES + 2
 
 
 def test_auto_on_a_cost_using_abs_spends_the_whole_probe():

@@ -1,0 +1,164 @@
+"""Probes: a few evaluations along random directions that decide how to check.
+
+Between the stencils and the verdicts in the pipeline: each probe asks the
+evaluate stage for a handful of points and reads them with the stencils'
+numerics.  The noise lines say how precise the cost's values are (and whether
+they are quantized); the complex-safety probe says whether the complex step
+may be used; the descent probe says whether a wrong gradient points uphill.
+Each returns values; none changes what it was given.
+"""
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import stencils
+from .evaluate import CostRunner
+
+# The second noise line is spaced 3/2 of the first (so its points j * 3/2 * t are as
+# exact as the first line's, even in float16), along its own direction: a
+# periodic noise that one spacing samples in step with its period (and so looks
+# smooth) is out of step with the other.
+SECOND_LINE_SPACING = 3 / 2
+# A complex-safety probe that meets a non-finite value is tried once more this much shorter.
+SHORTER_LINE = 2.0 ** -10
+# Relative noise is capped here: beyond it no step gives a useful derivative anyway.
+LARGEST_RELATIVE_NOISE = 1e-3
+
+
+@dataclass
+class Lines:
+    """What the noise lines saw: the features used downstream, and their verdicts."""
+    features: stencils.LineFeatures
+    quantized: bool          # values repeat exactly and jump in between
+    flat: bool               # every value on the first line equals f(x) exactly
+    undefined: bool          # a line met a non-finite value or an error
+    direction: np.ndarray    # the first line's direction (for the flat-line test)
+
+
+def noise_direction(size: int, scale: np.ndarray, seed=0, sizes: int = 1) -> np.ndarray:
+    """A random direction with entries of random sign and size between scale/4 and scale.
+
+    Entries are powers of two (sizes=1), so with a power-of-two spacing every point on
+    the line is exact even in float16 and float32 leaves: rounding the inputs would look
+    like noise.  sizes=8 gives k/16 of a power of two (k = 8..15) instead, exact in
+    float64, for the complex-safety probe, where entries of one size can cancel
+    (x + y along (1, -1)).
+    """
+    rng = np.random.default_rng(seed)
+    sign = rng.choice([-1.0, 1.0], size=size)
+    if sizes == 1:
+        return sign * stencils.power_of_two(scale * rng.uniform(0.5, 1.0, size=size))
+    return sign * stencils.power_of_two(scale) * rng.integers(16 - sizes, 16, size=size) / 16
+
+
+def _line_values(runner: CostRunner, v, t, f0):
+    """f at x + j t v, j = -4..4 (f0 in the middle); None where a point failed or is
+    not finite."""
+    half = stencils.NOISE_POINTS // 2
+    offsets = [j * t for j in range(-half, half + 1) if j != 0]
+    run = runner.run([v] * len(offsets), offsets, label="noise probe")
+    values = np.concatenate([run.values[:half], [f0], run.values[half:]]).real
+    if run.failures or not np.all(np.isfinite(values)):
+        return None
+    return values
+
+
+def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
+    """Cost values along two random lines with unrelated spacings (More & Wild's
+    difference table on each); the larger consistent noise level is kept."""
+    t = stencils.noise_spacing(eps)
+    seen, undefined = [], False
+    v1 = noise_direction(base.size, scale, 0)
+    for seed, spacing in ((0, t), (1, t * SECOND_LINE_SPACING)):
+        v = v1 if seed == 0 else noise_direction(base.size, scale, seed)
+        values = _line_values(runner, v, spacing, f0)
+        if values is None:
+            # Near the edge of where the cost is defined.  A shorter line is no help: the
+            # cost curves so fast there that the difference table would call it noise.
+            undefined = True
+            continue
+        seen.append((values, stencils.line_features(values, spacing,
+                                                    float(np.sum((v / scale) ** 2)))))
+    if not seen:
+        return Lines(stencils.LineFeatures.none(), False, False, undefined, v1)
+    # The larger noise level of the two; the other features (typical curvature, slope,
+    # third derivative) from the first line that was finite.
+    first = seen[0][1]
+    features = stencils.LineFeatures(
+        noise=max(f.noise for _, f in seen), order=first.order,
+        curvature_s2=first.curvature_s2, slope=first.slope, third=first.third,
+        values=first.values, spacing=first.spacing)
+    quantized = any(stencils.looks_quantized(values) for values, _ in seen)
+    flat = bool(np.all(seen[0][0] == f0))
+    return Lines(features, quantized, flat, undefined, v1)
+
+
+def relative_precision(dtype, noise: float, size: float) -> float:
+    """eps_f: the dtype's epsilon, or the measured noise relative to the size of the
+    cost's values near the point, where larger (capped at LARGEST_RELATIVE_NOISE)."""
+    eps = float(np.finfo(dtype).eps)
+    relative = noise / size if size != 0 else 0.0
+    return float(min(max(eps, relative), max(eps, LARGEST_RELATIVE_NOISE)))
+
+
+def complex_safety(runner: CostRunner, base, scale, f0, eps_f, eps, noise, seed) -> tuple:
+    """Is the cost complex-safe?  (safe, reason), from two complex and four real
+    evaluations along one random direction (see stencils.complex_probe_agrees).
+
+    The direction has power-of-two entries and the step is a power of two, so the
+    real points are exact: rounded inputs would pass for a cost that is not safe.
+    """
+    v = noise_direction(base.size, scale, 2 if seed is None else 2 + abs(int(seed)), sizes=8)
+    t = float(stencils.power_of_two(np.array(np.max(eps) ** (1 / 3))))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", np.exceptions.ComplexWarning)
+        complex_run = runner.run([v, v], [1j * stencils.COMPLEX_STEP, 1j * t],
+                                 label="complex-step probe")
+    if complex_run.failures:
+        exc = next(iter(complex_run.failures.values()))
+        return False, f"the cost fails at a complex point ({type(exc).__name__}: {exc})"
+    real_run = runner.run([v] * 4, [t, -t, 2 * t, -2 * t], label="complex-step probe")
+    if real_run.failures or not np.all(np.isfinite(real_run.values)):
+        t *= SHORTER_LINE     # near the edge of where the cost is defined
+        complex_run = runner.run([v, v], [1j * stencils.COMPLEX_STEP, 1j * t],
+                                 label="complex-step probe")
+        real_run = runner.run([v] * 4, [t, -t, 2 * t, -2 * t], label="complex-step probe")
+        if complex_run.failures or real_run.failures or \
+                not np.all(np.isfinite(real_run.values)):
+            return False, ("the probe could not decide: the cost fails or is not finite near "
+                           "the point")
+    return stencils.complex_probe_agrees(complex_run.values, real_run.values, f0,
+                                         stencils.COMPLEX_STEP, t, eps_f, noise)
+
+
+def descent_uphill(runner: CostRunner, analytic, scale, f0, noise, eps_f) -> bool:
+    """Does a small step against the analytic gradient raise the cost, and one along
+    it lower it (2 evaluations)?  A change below the cost's noise proves nothing.
+
+    The step moves each coordinate by at most 1e-4 of its scale.
+    """
+    g = analytic
+    size = float(np.max(np.abs(g) * scale)) if np.all(np.isfinite(g)) else 0.0
+    if size == 0.0:
+        return False
+    t = 1e-4 / size
+    run = runner.run([-g * scale ** 2, g * scale ** 2], [t, t], label="descent check")
+    if run.failures:
+        return False
+    down, up = run.values.real - f0
+    expected = t * float(np.sum((g * scale) ** 2))
+    resolvable = expected > 100 * max(noise, eps_f * abs(f0))
+    return bool(resolvable and down > 0 and up < 0)
+
+
+def flat_but_sloped(lines: Lines, analytic, f0) -> bool:
+    """The first line's values are all exactly f(x), yet the analytic gradient says
+    they change by far more than rounding over it: the cost is piecewise constant."""
+    if not lines.flat or lines.features.values.size == 0 or not np.all(np.isfinite(analytic)):
+        return False
+    reach = (stencils.NOISE_POINTS // 2) * lines.features.spacing
+    predicted = abs(float(analytic @ lines.direction)) * reach
+    return predicted > 1e3 * np.finfo(float).eps * max(abs(f0), 1e-300)
