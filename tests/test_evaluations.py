@@ -1,13 +1,13 @@
 """Evaluations are counted honestly: the report's count is the number of cost calls,
 and each method spends what it promises (n, 2n, 4n) plus a small constant of probes:
 the base point twice (a random cost is caught by the repeat), 8 points on each of the
-two noise lines, and 6 for the complex-safety probe (auto, and a requested complex step)."""
+three noise lines, and 6 for the complex-safety probe (auto, and a requested complex step)."""
 import numpy as np
 import pytest
 
 import gradcheck_kit as gk
 
-PROBES = 2 + 2 * 8      # base point twice, two noise lines
+PROBES = 2 + 3 * 8      # base point twice, three noise lines
 AUTO_PROBE = 6          # two complex points, four real ones
 
 

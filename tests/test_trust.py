@@ -1,0 +1,186 @@
+"""Issue 9: verdicts a user can trust.  Each test is a case that was seen to cry wolf
+or stay silent, with its cause fixed in the engine (see README "How a verdict is decided").
+Facts of the trade (common practice, no source): relu is piecewise linear with one-sided
+slopes at 0; log and sqrt are undefined below 0; a Cholesky factor of a symmetric positive
+definite matrix gives log det = 2 sum log diag(L)."""
+import warnings
+
+import autograd.numpy as anp
+import numpy as np
+import pytest
+
+import gradcheck_kit as gk
+
+METHODS = ["auto", "central", "forward", "backward", "five-point", "richardson",
+           "complex-step"]
+
+# --- 1. a kink at an exact zero ------------------------------------------------------------
+X = np.array([[1, -1, 0], [.5, .5, 1], [2, 0, -1], [1, 2, 3]])
+W = np.array([1, 1, -.5])            # X[0] @ W is exactly 0
+
+
+def relu_sum(w):
+    return np.sum(np.maximum(X @ w, 0))
+
+
+@pytest.mark.parametrize("convention", [0.0, 1.0])
+@pytest.mark.parametrize("method", METHODS)
+def test_a_relu_at_its_hinge_is_a_kink_for_every_method(method, convention):
+    def gradient(w):
+        z = X @ w
+        return X.T @ np.where(z > 0, 1.0, np.where(z == 0, convention, 0.0))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # complex step falls back
+        report = gk.compare_gradient(relu_sum, W, gradient, method=method)
+    assert report.passed, report.to_text()
+    assert report.counts.get("kink", 0) >= 1, report.to_text()
+
+
+def test_a_kink_on_curved_pieces_allows_the_slopes_their_step_error():
+    """A ReLU layer under a squared loss, zero biases and an all-zero input row: the
+    bias pre-activations are exactly 0, and the pieces on either side are curved."""
+    rng = np.random.default_rng(3)
+    inputs = rng.standard_normal((5, 3))
+    inputs[2] = 0.0
+    target = rng.standard_normal(5)
+    w1 = rng.standard_normal((3, 4))
+    w2 = rng.standard_normal(4)
+
+    def cost(b):
+        hidden = np.maximum(inputs @ w1 + b, 0)
+        return 0.5 * np.sum((hidden @ w2 - target) ** 2)
+
+    def gradient(b):          # relu'(0) = 1 at the hinge: a one-sided slope
+        z = inputs @ w1 + b
+        r = np.maximum(z, 0) @ w2 - target
+        return ((z >= 0) * (r[:, None] * w2[None, :])).sum(axis=0)
+    for method in ("auto", "central", "richardson", "five-point"):
+        report = gk.compare_gradient(cost, np.zeros(4), gradient, method=method)
+        assert report.passed and report.counts.get("kink"), report.to_text()
+
+
+def test_a_wrong_slope_at_a_kink_still_fails():
+    def gradient(w):
+        return X.T @ (X @ w > 0) + np.array([5.0, 0, 0])
+    assert not gk.compare_gradient(relu_sum, W, gradient).passed
+
+
+# --- 2. a non-finite value stays local -----------------------------------------------------
+Y, MU = np.array([0.3, -0.2]), np.array([0.1, 0.1])
+
+
+def gaussian_nll(p):
+    return 0.5 * anp.sum(anp.log(p["var"]) + (Y - p["mu"]) ** 2 / p["var"])
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_a_step_across_zero_is_redone_for_that_coordinate_only(method):
+    params = {"mu": MU, "var": np.array([1e-7, 1.0])}
+    report = gk.compare_gradient(gaussian_nll, params, method=method)
+    assert report.passed, report.to_text()
+    right = gk.compare_gradient(lambda x: anp.sum(anp.log(x)), np.array([1e-8, 1.0, 3.0]),
+                                method=method)
+    assert right.passed, right.to_text()
+
+
+def test_the_report_says_where_the_cost_was_undefined():
+    report = gk.compare_gradient(lambda x: anp.sum(anp.log(x)), np.array([1e-8, 1.0, 3.0]),
+                                 method="richardson")
+    row = next(r for r in report.rows if r.name == "x[0]")
+    assert "not finite" in row.detail
+    assert any("not finite at some stencil points of 1 coordinates (x[0])" in n
+               for n in report.notes)
+    assert all(r.detail == "" for r in report.rows if r.name != "x[0]")
+
+
+def test_a_wrong_gradient_near_the_edge_is_still_caught():
+    report = gk.compare_gradient(lambda x: anp.sum(anp.log(x)), np.array([1e-8, 1.0, 3.0]),
+                                 lambda x: 1 / x + np.array([1e6, 0, 0]), method="richardson")
+    assert [r.name for r in report.mismatches] == ["x[0]"], report.to_text()
+
+
+def test_a_nan_the_cost_never_reads_does_not_spoil_the_others():
+    params = {"a": np.array([1.0, 2.0]), "b": np.array([np.nan, 1.0])}
+    before = {k: v.copy() for k, v in params.items()}
+    report = gk.compare_gradient(lambda p: anp.sum(p["a"] ** 2), params)
+    assert report.passed, report.to_text()
+    assert any("non-finite entries (b[0])" in n for n in report.notes)
+    np.testing.assert_array_equal(params["b"], before["b"])
+
+
+# --- 3. the complex-safety probe -------------------------------------------------------------
+def cholesky_logdet(p):
+    a = np.array([[2.0, 0.3], [0.3, 1.0]]) + np.diag(p ** 2)
+    return 2 * np.sum(np.log(np.diag(np.linalg.cholesky(a))))
+
+
+def cholesky_logdet_gradient(p):
+    a = np.array([[2.0, 0.3], [0.3, 1.0]]) + np.diag(p ** 2)
+    return 2 * p * np.diag(np.linalg.inv(a))
+
+
+def test_a_requested_complex_step_on_a_cost_that_is_not_complex_safe_falls_back():
+    p = np.array([0.7, -0.4])
+    with pytest.warns(RuntimeWarning, match="complex_safe=True"):
+        report = gk.compare_gradient(cholesky_logdet, p, cholesky_logdet_gradient,
+                                     method="complex-step")
+    assert report.passed and report.method == "richardson", report.to_text()
+    assert any("richardson was used instead" in n for n in report.notes)
+
+
+def test_abs_inside_the_cost_is_not_taken_for_complex_safe():
+    def cost(x):     # abs() keeps the value real-valued at complex points: not analytic
+        return np.sum(np.abs(x) ** 3) / 3 + np.sum(x)
+
+    def gradient(x):
+        return np.abs(x) * x + 1
+    x = np.array([1.0, -2.0, 0.5, 3.0])
+    report = gk.compare_gradient(cost, x, gradient)
+    assert report.passed and report.method == "richardson", report.to_text()
+
+
+def test_complex_safe_true_insists_on_the_complex_step():
+    report = gk.compare_gradient(lambda x: np.sum(x ** 3), np.array([1.0, 2.0]),
+                                 lambda x: 3 * x ** 2, method="complex-step", complex_safe=True)
+    assert report.method == "complex-step" and report.passed
+
+
+def test_complex_safe_must_be_a_bool_or_none():
+    with pytest.raises(gk.CheckInputError, match="complex_safe"):
+        gk.compare_gradient(lambda x: np.sum(x ** 2), np.ones(2), complex_safe="yes")
+
+
+# --- 5. periodic noise that one spacing would alias ------------------------------------------
+@pytest.mark.parametrize("seed", range(12))
+def test_periodic_noise_is_seen_along_some_line(seed):
+    r = np.random.default_rng(seed).standard_normal(6)
+    x = np.random.default_rng(100 + seed).uniform(-1, 1, 6)
+
+    def cost(v):
+        return 10 + np.sum(v ** 2) + 1e-8 * np.sin(1e8 * (v @ r))
+    report = gk.compare_gradient(cost, x, lambda v: 2 * v)
+    assert report.passed, report.to_text()
+
+
+# --- 6. a float32 analytic gradient of a float64 cost ----------------------------------------
+def test_a_float32_gradient_is_allowed_its_own_rounding():
+    x = np.linspace(0.3, 2.0, 8)
+
+    def gradient(v):
+        return (np.exp(v) * 1000.0).astype(np.float32)
+    report = gk.compare_gradient(lambda v: 1000.0 * np.sum(np.exp(v)), x, gradient)
+    assert report.passed, report.to_text()
+    assert any("lower precision" in n for n in report.notes)
+    wrong = gk.compare_gradient(lambda v: 1000.0 * np.sum(np.exp(v)), x,
+                                lambda v: gradient(v) * np.float32(1.01))
+    assert not wrong.passed
+
+
+# --- 8. quantized costs ----------------------------------------------------------------------
+def test_a_quantized_cost_never_passes_a_zero_gradient():
+    def cost(x):
+        return float(int(np.sum(x ** 2) * 100))
+    x = np.array([3.0, 4.0, 5.0])
+    report = gk.compare_gradient(cost, x, lambda v: np.zeros(3), method="richardson")
+    assert not report.passed, report.to_text()
+    assert not any(r.verdict == "agree" and r.rel_error > 0.5 for r in report.rows)
