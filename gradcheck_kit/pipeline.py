@@ -413,7 +413,7 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
     return Comparison(numeric, analytic, allowed, verdict, kinks, details)
 
 
-def second_opinion(setup: Setup, first: Comparison, rtol, atol, requested: str,
+def second_opinion(setup: Setup, first: Comparison, rtol, atol,
                    analytic_eps=None) -> Comparison:
     """Recheck mismatches with real Richardson differences (four evaluations each).
 
@@ -497,7 +497,7 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
     h = plan.steps(used, setup.base, setup.layout, step, setup.eps)
     numeric = numeric_derivatives(setup, used, coords, h, refine=step is None)
     comp = compare(setup, numeric, analytic, rtol, atol, analytic_eps)
-    comp = second_opinion(setup, comp, rtol, atol, method, analytic_eps)
+    comp = second_opinion(setup, comp, rtol, atol, analytic_eps)
     report = finish(setup, comp, used, analytic_eps=analytic_eps,
                     allow_undecided=allow_undecided)
     report.source = Source(setup, analytic, h, used)
