@@ -31,6 +31,8 @@ REPEAT_TOLERANCE = 10.0  # two calls at one point may differ by this many eps (t
 # its step cut by SHORTEN_BY, up to SHORTEN_TIMES times (2^-18 of the step at most), then
 # one-sided on the side where the cost is defined.
 SHORTEN_BY = 8.0
+# Cost values this small next to their variation over a coordinate's scale count as 0.
+NEAR_ZERO = 1e-6
 SHORTEN_TIMES = 6
 
 
@@ -85,8 +87,9 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
     # Noise counts relative to the size of the cost's values, or of its variation over a
     # coordinate's scale where larger: at a point where the cost is 0 (x |x| at 0), a
     # tiny absolute level would otherwise pass for large relative noise.
-    size = max(float(np.max(np.abs(line.values), initial=abs(f0))), line.curvature_s2,
-               line.slope)
+    size = float(np.max(np.abs(line.values), initial=abs(f0)))
+    if size <= NEAR_ZERO * max(line.curvature_s2, line.slope):
+        size = max(line.curvature_s2, line.slope)
     eps_f = probes.relative_precision(runner.output_dtype, line.noise, size)
     noisy = eps_f > NOISY_ABOVE * dtype_eps
     # Steps grow only for costs noisy well beyond rounding (More & Wild, ACM TOMS 38(3),
@@ -526,17 +529,17 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
                      "means less than in float64")
     if comp.numeric.undefined:
         names = [coordinate_name(setup.layout, c) for c in comp.numeric.undefined]
-        notes.append(f"the cost is not finite at some stencil points of {len(names)} "
-                     f"coordinates ({verdicts.name_list(names)}): those were redone with shorter "
+        notes.append(f"the cost is not finite at some stencil points of "
+                     f"{verdicts.count(len(names), 'coordinate')} ({verdicts.name_list(names)}): those were redone with shorter "
                      "steps or one-sided differences (see their rows); the others are unaffected")
     kinked = [r.name for r in rows if r.verdict == "kink"]
     if kinked:
-        notes.append(f"{len(kinked)} coordinates sit on a kink, where the cost has two one-sided "
+        notes.append(f"{verdicts.count(len(kinked), 'coordinate')} on a kink, where the cost has two one-sided "
                      f"slopes and the analytic value lies between them: "
                      f"{verdicts.name_list(kinked)}; a kink does not fail the check")
     undecided = [r.name for r in rows if r.verdict == "noisy"]
     if undecided:
-        notes.append(f"{len(undecided)} coordinates could not be decided: the numeric "
+        notes.append(f"{verdicts.count(len(undecided), 'coordinate')} could not be decided: the numeric "
                      f"derivative's error estimate is as large as the values (cost noise about "
                      f"{setup.line.noise:.2g}): {verdicts.name_list(undecided)}")
     if rows and len(undecided) == len(rows) and not allow_undecided:

@@ -248,7 +248,7 @@ def complex_probe_agrees(complex_values, real_values, f0: float, hc: float, t: f
     slope_tol = 0.25 * abs(c2 - c1) + rounding / t + 1e-12 * max(abs(dc), abs(slope))
     if abs(dc - slope) > slope_tol:
         return False, ("the complex step disagrees with real differences along a random "
-                       f"direction ({dc:.6g} vs {slope:.6g}): the cost is not complex-safe")
+                       f"direction ({dc:.10g} vs {slope:.10g}): the cost is not complex-safe")
     s1, s2 = (fp - 2 * f0 + fm) / t ** 2, (fp2 - 2 * f0 + fm2) / (4 * t ** 2)
     predicted = f0 - t ** 2 * (4 * s1 - s2) / 6       # f0 - t^2 f2 / 2, f2 extrapolated
     curve_tol = t ** 2 * abs(s2 - s1) + 2 * rounding

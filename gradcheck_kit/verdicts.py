@@ -28,6 +28,7 @@ FAILING = ("disagree", "non-finite", "error")   # verdicts that fail a report
 SAFETY = 2.0
 ANALYTIC_ROUNDING = 1000.0
 ANALYTIC_ROUNDING_CAP = 1e-3
+ANALYTIC_VALUE_ROUNDING = 16.0
 
 
 def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
@@ -41,12 +42,15 @@ def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, ato
     """How far apart analytic and numeric may be, per coordinate (see module text).
 
     eps_a is the precision of the analytic values themselves (a float32 gradient of a
-    float64 cost carries float32 rounding); the larger of eps_f and eps_a sets the
-    share allowed for rounding in the analytic gradient.
+    float64 cost carries float32 rounding).
     """
     if rtol is None and atol is None:
-        eps = max(eps_f, eps_a or 0.0)
-        share = min(ANALYTIC_ROUNDING * eps, ANALYTIC_ROUNDING_CAP)
+        share = min(ANALYTIC_ROUNDING * eps_f, ANALYTIC_ROUNDING_CAP)
+        if eps_a is not None and eps_a > eps_f:
+            # Values stored in a lower precision than the cost's carry its rounding on top:
+            # about eps_a relative to what they are summed from, no more, so that a 0.1%
+            # error in a float32 gradient is still caught.
+            share += ANALYTIC_VALUE_ROUNDING * eps_a
         return SAFETY * error + share * (np.abs(analytic) + terms)
     return (atol or 0.0) + (rtol or 0.0) * np.abs(numeric)
 
@@ -144,6 +148,11 @@ def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -
 # --- hints: patterns across mismatches ---------------------------------------------------
 def _close(x, y, tol):
     return np.abs(x - y) <= tol + 1e-6 * np.maximum(np.abs(x), np.abs(y))
+
+
+def count(n: int, noun: str) -> str:
+    """'1 coordinate', '3 coordinates'."""
+    return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
 def name_list(names, limit=4) -> str:
