@@ -301,8 +301,7 @@ def _one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> N
     with warnings.catch_warnings():
         if method == "complex-step":  # a cast that drops the imaginary part is an error here
             warnings.simplefilter("error", np.exceptions.ComplexWarning)
-        with np.errstate(all="ignore"):
-            results = setup.runner.run(where, amounts, label=f"{method} differences")
+        results = setup.runner.run(where, amounts, label=f"{method} differences")
     k = len(stencils.OFFSETS[method])
     values = results.values.reshape(len(coords), k)
     failed = np.zeros(len(coords), dtype=bool)

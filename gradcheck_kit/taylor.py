@@ -25,9 +25,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .analytic import analytic_vector
+from .analytic import analytic_values
 from .pipeline import prepare
-from .tree import coordinate_name, leaves_of
+from .tree import coordinate_name
 
 LARGEST_STEP = 1           # steps h = 2^-1, 2^-2, ... (v is relative to the coordinates' scales)
 BELOW_SQRT_EPS = 2.0 ** -8   # the smallest step: sqrt(eps of the values) times this ...
@@ -98,29 +98,9 @@ def fit_order(steps, remainders, floor) -> tuple:
 def taylor_test(cost, params, gradient=None, *, seed=None) -> TaylorResult:
     """Fit the order of the first-order Taylor remainder along one random direction."""
     setup = prepare(cost, params, repeat=False)
-    values = []
-    if callable(gradient):
-        def recording(p, gradient=gradient):
-            values.append(gradient(p))
-            return values[-1]
-        g = analytic_vector(cost, setup.base, setup.layout, recording)
-    else:
-        g = analytic_vector(cost, setup.base, setup.layout, gradient)
-        values.append(gradient)
-    return taylor_from_setup(setup, g, seed, gradient_eps=_precision_of(values[-1]))
-
-
-def _precision_of(value):
-    """The epsilon of the least precise float leaf of a gradient value; None (unknown:
-    the parameters' precision is assumed) for autograd's gradient."""
-    if value is None:
-        return None
-    eps = float(np.finfo(np.float64).eps)
-    for leaf in leaves_of(value):
-        dtype = getattr(leaf, "dtype", None)
-        if dtype is not None and np.issubdtype(dtype, np.floating):
-            eps = max(eps, float(np.finfo(dtype).eps))
-    return eps
+    g, eps = analytic_values(cost, setup.base, setup.layout, gradient)
+    # autograd's gradient (gradient=None) is taken in the parameters' own precision
+    return taylor_from_setup(setup, g, seed, gradient_eps=None if gradient is None else eps)
 
 
 def _stored(point: np.ndarray, layout) -> np.ndarray:

@@ -162,8 +162,6 @@ def name_list(names, limit=4) -> str:
     return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
 
 
-_list = name_list
-
 
 def _describe_factor(c: float) -> str:
     """Words for a constant ratio analytic / numeric: 2, 1/2, or k and 1/k for an integer k."""
@@ -193,18 +191,18 @@ def hints(layout, coords, analytic, numeric, verdict, allowed) -> list:
     solid = np.abs(n) > tol
     if solid.any() and np.mean(_close(a[solid], -n[solid], tol[solid])) >= 0.8:
         out.append(f"sign: the analytic value is the negative of the numeric one at "
-                   f"{_list([m for m, s in zip(names, solid) if s])}: a sign error")
+                   f"{name_list([m for m, s in zip(names, solid) if s])}: a sign error")
     elif solid.sum() >= 1 and np.all(np.abs(a[solid]) > tol[solid]):
         ratio = a[solid] / n[solid]
         c = float(np.median(ratio))
         if c > 0 and not np.isclose(c, 1.0, rtol=1e-3) and \
                 np.all(np.abs(ratio - c) <= 1e-3 * abs(c)):
-            out.append(f"factor: at {_list([m for m, s in zip(names, solid) if s])} the analytic "
-                       f"value is {_describe_factor(c)}")
+            out.append(f"factor: at {name_list([m for m, s in zip(names, solid) if s])} the "
+                       f"analytic value is {_describe_factor(c)}")
     zero = (np.abs(a) <= tol) & solid
     if zero.any():
         out.append(f"missing term: the analytic gradient is zero at "
-                   f"{_list([m for m, z in zip(names, zero) if z])}, where the cost does change")
+                   f"{name_list([m for m, z in zip(names, zero) if z])}, where the cost does change")
     out += _layout_hints(layout, coords, analytic, numeric, verdict, allowed)
     leaf_no = leaf_of_each(layout)[coords]
     bad_leaves = set(leaf_no[bad])
