@@ -9,13 +9,13 @@ from .errors import CheckInputError, CheckInterrupted, GradientMismatchError
 from .jacobian import compare_jacobian
 from .locate import locate_mismatches
 from .pipeline import NoiseEstimate, compare_gradient, estimate_noise, numeric_gradient
-from .taylor import TaylorResult, taylor_test
+from .remainder import RemainderResult, remainder_order
 from .report import GradientReport, Row
 
 __version__ = "0.1.0"
 
 __all__ = [
     "numeric_gradient", "compare_gradient", "assert_gradient_matches", "compare_jacobian",
-    "taylor_test", "estimate_noise", "locate_mismatches", "TaylorResult", "NoiseEstimate", "case",
+    "remainder_order", "estimate_noise", "locate_mismatches", "RemainderResult", "NoiseEstimate", "case",
     "GradientReport", "Row", "GradientMismatchError", "CheckInputError", "CheckInterrupted",
 ]

@@ -11,8 +11,8 @@
 - Taylor remainder: |f(x + h v) - f(x) - h g.v| against h, with slopes 1 and 2
   drawn for reference.
 
-The sweep and the Taylor panel evaluate the cost again (about 90 evaluations per
-swept coordinate and 26 for the Taylor test); they are drawn when the report
+The sweep and the remainder panel evaluate the cost again (about 90 evaluations per
+swept coordinate and 26 for the remainder-order check); they are drawn when the report
 still knows its cost, which is the case for reports of compare_gradient.
 """
 from __future__ import annotations
@@ -48,7 +48,7 @@ def _grid(rows, shape):
     verdict = np.full(shape2, "", dtype=object)
     for r in rows:
         i, j = np.unravel_index(np.ravel_multi_index(r.index, shape) if shape else 0, shape2)
-        rel = r.rel_error if np.isfinite(r.rel_error) else 1.0
+        rel = r.relative_error if np.isfinite(r.relative_error) else 1.0
         values[i, j] = np.log10(max(rel, 1e-16))
         verdict[i, j] = r.verdict
     return values, verdict
@@ -92,7 +92,7 @@ def draw_step_sweep(ax, sweeps, names):
     ax.legend(fontsize=8)
 
 
-def draw_taylor(ax, result):
+def draw_remainder(ax, result):
     h, r = result.steps, result.remainders
     ok = r > 0
     ax.loglog(h[ok], r[ok], "o-", color="black", markersize=3, linewidth=1, label="remainder")
@@ -117,7 +117,7 @@ def plot_jacobian(report, path):
     verdict = np.full((m, n), "", dtype=object)
     for r in report.rows:
         i, j = divmod(r.flat_index, n)
-        rel = r.rel_error if np.isfinite(r.rel_error) else 1.0
+        rel = r.relative_error if np.isfinite(r.relative_error) else 1.0
         values[i, j] = np.log10(max(rel, 1e-16))
         verdict[i, j] = r.verdict
     fig, ax = plt.subplots(figsize=(max(5, 0.4 * n + 3), max(4, 0.35 * m + 2)))
@@ -132,17 +132,17 @@ def plot_jacobian(report, path):
     return fig
 
 
-def plot_report(report, path, *, sweep=True, taylor=True):
+def plot_report(report, path, *, sweep=True, remainder=True):
     """Write the report's figure to `path`; returns the matplotlib Figure."""
     if "outputs" in report.extra:
         return plot_jacobian(report, path)
     plt = _pyplot()
-    params = [p for p in report.parameters() if p["checked"] >= 2][:4]
-    extra = report.source is not None and (sweep or taylor)
+    params = [p for p in report.parameters if p["checked"] >= 2][:4]
+    extra = report.source is not None and (sweep or remainder)
     ncols = max(len(params), 2 if extra else 1)
     nrows = (1 if params else 0) + (1 if extra else 0)
     if nrows == 0:
-        nrows, params = 1, report.parameters()[:1]
+        nrows, params = 1, report.parameters[:1]
     fig, axes = plt.subplots(nrows, ncols, figsize=(5 * ncols, 4 * nrows), squeeze=False)
     row = 0
     if params:
@@ -158,7 +158,7 @@ def plot_report(report, path, *, sweep=True, taylor=True):
             axes[0, k].axis("off")
         row = 1
     if extra:
-        worst = [r for r in sorted(report.rows, key=lambda r: -_finite(r.rel_error))][
+        worst = [r for r in sorted(report.rows, key=lambda r: -_finite(r.relative_error))][
             :SWEEP_COORDINATES]
         if sweep and worst:
             sweeps = []
@@ -169,8 +169,8 @@ def plot_report(report, path, *, sweep=True, taylor=True):
             draw_step_sweep(axes[row, 0], sweeps, [r.name for r in worst])
         else:
             axes[row, 0].axis("off")
-        if taylor:
-            draw_taylor(axes[row, 1], report.source.taylor())
+        if remainder:
+            draw_remainder(axes[row, 1], report.source.remainder())
         else:
             axes[row, 1].axis("off")
         for k in range(2, ncols):
@@ -182,10 +182,10 @@ def plot_report(report, path, *, sweep=True, taylor=True):
     return fig
 
 
-def plot_taylor(result, path):
+def plot_remainder(result, path):
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(5, 4))
-    draw_taylor(ax, result)
+    draw_remainder(ax, result)
     fig.tight_layout()
     fig.savefig(path, dpi=100)
     plt.close(fig)

@@ -249,8 +249,8 @@ def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
         interrupted |= part.interrupted
         for r in part.rows:
             rows.append(Row(f"{names[k]} wrt {r.name}", r.parameter, r.index,
-                            k * n + r.flat_index, r.analytic, r.numeric, r.abs_error,
-                            r.rel_error, r.error_estimate, r.verdict, r.detail))
+                            k * n + r.flat_index, r.analytic, r.numeric, r.absolute_error,
+                            r.relative_error, r.error_estimate, r.verdict, r.detail))
         part_notes += [f"{names[k]}: {t}" for t in part.notes
                        if f"{names[k]}: {t}" not in part_notes]
         hints += [f"{names[k]}: {t}" for t in part.hints]

@@ -599,6 +599,6 @@ class Source:
                 "chosen_step": float(chosen[flat_index]),
                 "analytic": float(self.analytic[flat_index])}
 
-    def taylor(self, seed=None):
-        from .taylor import taylor_from_setup
-        return taylor_from_setup(self.setup, self.analytic, seed)
+    def remainder(self, seed=None):
+        from .remainder import remainder_from_setup
+        return remainder_from_setup(self.setup, self.analytic, seed)

@@ -142,7 +142,7 @@ def pytest_terminal_summary(terminalreporter, exitstatus, config):
         return
     terminalreporter.section("gradient checks that failed")
     for node, report in failed:
-        worst = ", ".join(f"{r.name} ({r.verdict}, rel. error {r.rel_error:.2g})"
+        worst = ", ".join(f"{r.name} ({r.verdict}, rel. error {r.relative_error:.2g})"
                           for r in report.mismatches[:3]) or "; ".join(report.problems)
         terminalreporter.write_line(f"{node}: {worst}")
         for hint in report.hints:

@@ -1,23 +1,23 @@
 """Stage 6, report: the GradientReport data and its renderers (text, JSON, figures).
 
-JSON schema (schema_version 1), the output of `to_dict`:
+JSON schema (schema_version 2), the output of `to_dict`:
 
     schema          "gradcheck_kit/gradient-report"
-    schema_version  1
+    schema_version  2
     passed          bool
     method          the method used ("complex-step", "richardson", ...)
     evaluations     cost evaluations spent (points; a batch of k counts k)
     interrupted     bool: stopped by Ctrl-C, rows cover the finished coordinates
     checked         coordinates examined;  total: coordinates in params
     counts          {verdict: number of rows}
-    worst_rel_error largest relative error among the rows (null if none)
+    worst_relative_error largest relative error among the rows (null if none)
     suggested_rtol, suggested_atol   see verdicts.suggest_tolerances (null if none agree)
     problems        reasons the report fails besides its rows (e.g. a random cost)
     hints, notes    lists of sentences
-    parameters      [{name, checked, counts, worst_rel_error}]
+    parameters      [{name, checked, counts, worst_relative_error}]
     rows            [{name, parameter, index, flat_index, analytic, numeric,
-                      abs_error, rel_error, error_estimate, verdict, detail}]
-    extra           method-specific data (e.g. taylor test, noise level)
+                      absolute_error, relative_error, error_estimate, verdict, detail}]
+    extra           method-specific data (e.g. the remainder-order check, noise level)
 
 Non-finite numbers are written as null, since JSON has no NaN.
 """
@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 from .verdicts import FAILING, VERDICTS
 
 SCHEMA = "gradcheck_kit/gradient-report"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 TABLE_ROWS = 10  # rows shown in the text table; the rest are counted
 
 
@@ -45,8 +45,8 @@ class Row:
     flat_index: int      # position in the flat vector
     analytic: float
     numeric: float
-    abs_error: float
-    rel_error: float
+    absolute_error: float
+    relative_error: float
     error_estimate: float
     verdict: str
     detail: str = ""     # why, when the verdict needs a word (the error raised, a kink's slopes)
@@ -88,16 +88,18 @@ class GradientReport:
         return dict(Counter(r.verdict for r in self.rows))
 
     @property
-    def worst_rel_error(self):
-        errors = [r.rel_error for r in self.rows]
+    def worst_relative_error(self):
+        errors = [r.relative_error for r in self.rows]
         return max(errors) if errors else None
 
+    @property
     def parameters(self) -> list:
+        """One summary per parameter: name, rows checked, verdict counts, worst relative error."""
         by = {}
         for r in self.rows:
             by.setdefault(r.parameter, []).append(r)
         return [{"name": name, "checked": len(rs), "counts": dict(Counter(r.verdict for r in rs)),
-                 "worst_rel_error": max(r.rel_error for r in rs)} for name, rs in by.items()]
+                 "worst_relative_error": max(r.relative_error for r in rs)} for name, rs in by.items()]
 
     # --- renderers -----------------------------------------------------------------------
     def to_text(self, max_rows: int = TABLE_ROWS) -> str:
@@ -112,12 +114,12 @@ class GradientReport:
             "title": self.title, "passed": self.passed, "method": self.method,
             "evaluations": self.evaluations, "interrupted": self.interrupted,
             "checked": len(self.rows), "total": self.total, "counts": self.counts,
-            "worst_rel_error": _json_number(self.worst_rel_error),
+            "worst_relative_error": _json_number(self.worst_relative_error),
             "suggested_rtol": _json_number(self.suggested_rtol),
             "suggested_atol": _json_number(self.suggested_atol),
             "problems": list(self.problems), "hints": list(self.hints), "notes": list(self.notes),
-            "parameters": [{**p, "worst_rel_error": _json_number(p["worst_rel_error"])}
-                           for p in self.parameters()],
+            "parameters": [{**p, "worst_relative_error": _json_number(p["worst_relative_error"])}
+                           for p in self.parameters],
             "rows": [_row_dict(r) for r in self.rows],
             "extra": _jsonable(self.extra),
         }
@@ -171,14 +173,14 @@ def _jsonable(obj):
 def _row_dict(r: Row) -> dict:
     return {"name": r.name, "parameter": r.parameter, "index": list(r.index),
             "flat_index": r.flat_index, "analytic": _json_number(r.analytic),
-            "numeric": _json_number(r.numeric), "abs_error": _json_number(r.abs_error),
-            "rel_error": _json_number(r.rel_error),
+            "numeric": _json_number(r.numeric), "absolute_error": _json_number(r.absolute_error),
+            "relative_error": _json_number(r.relative_error),
             "error_estimate": _json_number(r.error_estimate), "verdict": r.verdict,
             "detail": r.detail}
 
 
 def _worst_first(rows):
-    return sorted(rows, key=lambda r: (not r.failing, -_sortable(r.rel_error), r.flat_index))
+    return sorted(rows, key=lambda r: (not r.failing, -_sortable(r.relative_error), r.flat_index))
 
 
 def _sortable(x):
@@ -206,7 +208,7 @@ def summary_line(report: GradientReport) -> str:
         parts[0] += " (" + ", ".join(others) + ")"
     if checked < report.total:
         parts.append(f"of {report.total} in params")
-    worst = report.worst_rel_error
+    worst = report.worst_relative_error
     parts.append(f"worst relative error {_fmt(worst, 1)}")
     parts.append(f"method {report.method}")
     parts.append(f"{report.evaluations} evaluations")
@@ -225,21 +227,21 @@ def render_text(report: GradientReport, max_rows: int = TABLE_ROWS) -> str:
                      f"{'numeric':>14}  {'rel error':>9}  {'est error':>9}")
         for r in shown:
             lines.append(f"  {r.name:<{width}}  {r.verdict:<10}  {_fmt(r.analytic):>14}  "
-                         f"{_fmt(r.numeric):>14}  {_fmt(r.rel_error, 1):>9}  "
+                         f"{_fmt(r.numeric):>14}  {_fmt(r.relative_error, 1):>9}  "
                          f"{_fmt(r.error_estimate, 1):>9}" + (f"  {r.detail}" if r.detail else ""))
         rest = ordered[max_rows:]
         if rest:
             rest_counts = Counter(r.verdict for r in rest)
             lines.append(f"  ... {len(rest)} more rows: " +
                          ", ".join(f"{n} {v}" for v, n in sorted(rest_counts.items())))
-    params = report.parameters()
+    params = report.parameters
     if len(params) > 1 or (params and params[0]["checked"] > 1):
         lines.append("  by parameter:")
         width = max(len(p["name"]) for p in params)
         for p in params:
             counts = ", ".join(f"{n} {v}" for v, n in sorted(p["counts"].items()))
             lines.append(f"    {p['name']:<{width}}  largest relative error "
-                         f"{_fmt(p['worst_rel_error'], 1)}  ({counts})")
+                         f"{_fmt(p['worst_relative_error'], 1)}  ({counts})")
     for title, items in (("hints", report.hints), ("notes", report.notes)):
         if items:
             lines.append(f"  {title}:")

@@ -1,5 +1,5 @@
 """Diagnostics that tell real bugs from numerics: kinks, noise, precision, randomness,
-input editing, hints, descent, Jacobians and the Taylor test."""
+input editing, hints, descent, Jacobians and the remainder-order check."""
 import autograd.numpy as anp
 import numpy as np
 import pytest
@@ -308,7 +308,7 @@ def test_tree_outputs_are_named_by_their_leaves():
     assert report.passed and "energy[2] wrt w[2]" in {r.name for r in report.rows}
 
 
-# --- the Taylor test ---------------------------------------------------------------------
+# --- the remainder-order check ---------------------------------------------------------------------
 def taylor_cost(x):
     return anp.sum(anp.sin(x) ** 2) + anp.prod(anp.cos(x))
 
@@ -321,12 +321,12 @@ def taylor_grad(x):
 @pytest.mark.parametrize("seed", range(4))
 def test_taylor_order_two_for_the_right_gradient_and_one_for_a_wrong_one(seed):
     x = np.array([0.3, -0.8, 1.2, 0.5])
-    right = gk.taylor_test(taylor_cost, x, taylor_grad, seed=seed)
+    right = gk.remainder_order(taylor_cost, x, taylor_grad, seed=seed)
     assert right.passed and abs(right.order - 2) <= 0.3, right
-    wrong = gk.taylor_test(taylor_cost, x, lambda v: 1.01 * taylor_grad(v), seed=seed)
+    wrong = gk.remainder_order(taylor_cost, x, lambda v: 1.01 * taylor_grad(v), seed=seed)
     assert not wrong.passed and abs(wrong.order - 1) <= 0.3, wrong
     assert len(right.steps) == len(right.remainders) == len(right.first_order)
-    assert gk.taylor_test(taylor_cost, x, seed=seed).passed  # autograd's gradient
+    assert gk.remainder_order(taylor_cost, x, seed=seed).passed  # autograd's gradient
 
 
 def test_float16_cost_still_gets_a_verdict():

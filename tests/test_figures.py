@@ -65,7 +65,7 @@ def test_report_figure_has_sweep_and_taylor_panels(tmp_path):
 
 
 def test_taylor_figure_alone(tmp_path):
-    result = gk.taylor_test(lambda x: np.sum(np.sin(x) ** 2), np.array([0.3, 0.9]),
+    result = gk.remainder_order(lambda x: np.sum(np.sin(x) ** 2), np.array([0.3, 0.9]),
                             lambda x: np.sin(2 * x))
     fig = result.plot(tmp_path / "taylor.png")
     assert (tmp_path / "taylor.png").stat().st_size > 5_000

@@ -63,12 +63,12 @@ def test_json_round_trip_and_schema(tmp_path):
     text = report.to_json(path)
     data = json.loads(path.read_text())
     assert data == json.loads(text)
-    assert data["schema"] == "gradcheck_kit/gradient-report" and data["schema_version"] == 1
+    assert data["schema"] == "gradcheck_kit/gradient-report" and data["schema_version"] == 2
     assert data["passed"] is False and data["counts"] == {"agree": 14, "disagree": 1}
     row = next(r for r in data["rows"] if r["verdict"] == "disagree")
     assert row["name"] == "W[1, 2]" and row["parameter"] == "W" and row["index"] == [1, 2]
     assert row["flat_index"] == 6
-    assert set(row) >= {"analytic", "numeric", "abs_error", "rel_error", "error_estimate"}
+    assert set(row) >= {"analytic", "numeric", "absolute_error", "relative_error", "error_estimate"}
     assert data["evaluations"] == report.evaluations
 
 
@@ -76,7 +76,7 @@ def test_json_writes_null_for_non_finite_numbers():
     report = gk.compare_gradient(lambda x: np.sum(x ** 2), np.ones(2), [np.nan, 2.0])
     data = json.loads(report.to_json())
     bad = next(r for r in data["rows"] if r["verdict"] == "non-finite")
-    assert bad["analytic"] is None and bad["rel_error"] is None
+    assert bad["analytic"] is None and bad["relative_error"] is None
 
 
 def test_suggested_tolerances_are_passed_by_the_agreeing_coordinates():

@@ -201,4 +201,4 @@ def test_a_quantized_cost_never_passes_a_zero_gradient():
     x = np.array([3.0, 4.0, 5.0])
     report = gk.compare_gradient(cost, x, lambda v: np.zeros(3), method="richardson")
     assert not report.passed, report.to_text()
-    assert not any(r.verdict == "agree" and r.rel_error > 0.5 for r in report.rows)
+    assert not any(r.verdict == "agree" and r.relative_error > 0.5 for r in report.rows)

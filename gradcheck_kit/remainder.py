@@ -1,4 +1,4 @@
-"""The Taylor test: does the remainder shrink like h^2 along a random direction?
+"""The remainder-order check: does the remainder shrink like h^2 along a random direction?
 
 r(h) = |f(x + d) - f(x) - g.d|, with d = h v, is O(h^2) when g is the gradient
 and O(h) when it is not: r ~ h |e.v| + h^2 |v'Hv| / 2 for a gradient off by e.
@@ -39,7 +39,7 @@ PASS_ORDER = 1.5           # about 2 when right, about 1 when wrong
 
 
 @dataclass
-class TaylorResult:
+class RemainderResult:
     order: float                 # fitted order of the remainder (nan if it could not be fitted)
     passed: bool
     steps: np.ndarray            # h values (multiples of the direction, largest first)
@@ -52,15 +52,15 @@ class TaylorResult:
 
     def plot(self, path):
         """Log-log figure of the remainders (needs matplotlib: the `plot` extra)."""
-        from .figures import plot_taylor
-        return plot_taylor(self, path)
+        from .figures import plot_remainder
+        return plot_remainder(self, path)
 
     def __str__(self):
         verdict = "PASS" if self.passed else "FAIL"
         if not np.isfinite(self.order):
-            return (f"{verdict} Taylor test: no order fitted; {self.evaluations} evaluations"
+            return (f"{verdict} remainder order check: no order fitted; {self.evaluations} evaluations"
                     + (f"; {self.message}" if self.message else ""))
-        return (f"{verdict} Taylor test: remainder order {self.order:.2f} (2 for a right "
+        return (f"{verdict} remainder order check: remainder order {self.order:.2f} (2 for a right "
                 f"gradient, 1 for a wrong one) over {int(self.fitted.sum())} steps; "
                 f"{self.evaluations} evaluations" + (f"; {self.message}" if self.message else ""))
 
@@ -95,12 +95,12 @@ def fit_order(steps, remainders, floor) -> tuple:
     return float(slope), fitted
 
 
-def taylor_test(cost, params, gradient=None, *, seed=None) -> TaylorResult:
+def remainder_order(cost, params, gradient=None, *, seed=None) -> RemainderResult:
     """Fit the order of the first-order Taylor remainder along one random direction."""
     setup = prepare(cost, params, repeat=False)
     g, eps = analytic_values(cost, setup.base, setup.layout, gradient)
     # autograd's gradient (gradient=None) is taken in the parameters' own precision
-    return taylor_from_setup(setup, g, seed, gradient_eps=None if gradient is None else eps)
+    return remainder_from_setup(setup, g, seed, gradient_eps=None if gradient is None else eps)
 
 
 def _stored(point: np.ndarray, layout) -> np.ndarray:
@@ -120,7 +120,7 @@ def _non_finite_message(g: np.ndarray, layout) -> str:
             "gradient with NaN or inf entries is wrong wherever the cost is finite")
 
 
-def taylor_from_setup(setup, g, seed=None, gradient_eps=None) -> TaylorResult:
+def remainder_from_setup(setup, g, seed=None, gradient_eps=None) -> RemainderResult:
     """The test on a prepared cost; gradient_eps is the precision g was computed in
     (None: that of the parameters, the least precise leaf)."""
     layout = setup.layout
@@ -131,14 +131,14 @@ def taylor_from_setup(setup, g, seed=None, gradient_eps=None) -> TaylorResult:
     none = np.zeros(len(steps), dtype=bool)
     g = np.asarray(g, dtype=np.float64)
     if not np.all(np.isfinite(g)):
-        return TaylorResult(float("nan"), False, steps, empty, empty.copy(), none, float("nan"),
+        return RemainderResult(float("nan"), False, steps, empty, empty.copy(), none, float("nan"),
                             setup.runner.evaluations, _non_finite_message(g, layout))
     rng = np.random.default_rng(seed)
     # every coordinate takes part, with a random size between half and all of its scale
     sign = np.where(g != 0, np.sign(g), rng.choice([-1.0, 1.0], size=setup.base.size))
     v = sign * rng.uniform(0.5, 1.0, setup.base.size) * setup.scale
     moves = [_stored(setup.base + h * v, layout) - setup.base for h in steps]
-    run = setup.runner.run(moves, [1.0] * len(steps), label="taylor test")
+    run = setup.runner.run(moves, [1.0] * len(steps), label="remainder order")
     f = run.values.real
     predicted = np.array([g @ d for d in moves])
     remainders = np.abs(f - setup.f0 - predicted)
@@ -171,5 +171,5 @@ def taylor_from_setup(setup, g, seed=None, gradient_eps=None) -> TaylorResult:
             why = (f"only {above} step{'s' if above != 1 else ''} had a remainder above "
                    "rounding, too few in a row to fit an order, so nothing was decided")
         message = "; ".join([why] + trouble)
-    return TaylorResult(order, passed, steps, remainders, first, fitted, slope,
+    return RemainderResult(order, passed, steps, remainders, first, fitted, slope,
                         setup.runner.evaluations, message)
