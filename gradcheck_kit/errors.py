@@ -23,3 +23,11 @@ class CheckInterrupted(KeyboardInterrupt):
     def __init__(self, report):
         super().__init__("gradient check interrupted")
         self.report = report
+
+
+class LongCheckWarning(UserWarning):
+    """Issued early in a check whose estimated run time is long; says how to make it shorter.
+
+    The command line prints it on stderr as soon as it is issued; in the API it is a warning
+    (and the same sentence is a note of the report).
+    """
