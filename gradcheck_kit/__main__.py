@@ -1,6 +1,7 @@
-"""`python -m gradcheck_kit check ...`: the command line."""
+"""`python -m gradcheck_kit check ...`: the command line (see cli.py)."""
 import sys
 
 from .cli import main
 
-sys.exit(main())
+if __name__ == "__main__":
+    sys.exit(main())
