@@ -1,147 +1,454 @@
 """Declared gradient cases: `@gk.case(...)` on a cost, checked by the plugin and the CLI.
 
-A case is declared once, next to the cost, and returns the cost itself, still
-callable as before, carrying the declaration in `cost.gradient_case`.  `params`
-may be a structure, a callable taking a numpy Generator and returning one, or a
-hypothesis strategy; with a strategy the case is checked at several drawn
-points and hypothesis shrinks a failure to the simplest failing point.
-hypothesis is imported only when a strategy is used.
+A case is declared next to the cost and the decorator returns the cost itself,
+still callable as before.  Every declaration is its own case: it is kept in a
+registry held by the module whose code applied the decorator (the module global
+``__gradient_cases__``), so two declarations on one function
+(``right = gk.case(g, ...)(cost)`` and ``canary = gk.case(g_bug, ...)(cost)``)
+stay two cases, and a module that imports a case from another does not declare
+it again.  A case is labelled by its ``name=``, else by the module variable the
+declaration was assigned to, else by the cost's ``__name__``.
+
+`params` may be a structure, a callable taking a numpy Generator and returning
+one, or a hypothesis strategy; with a strategy the case is checked at several
+drawn points and hypothesis shrinks each distinct failure to the simplest point
+that shows it.  hypothesis is imported only when a strategy is used.
 """
 from __future__ import annotations
 
 import inspect
 import numbers
 import sys
-from dataclasses import dataclass, field
+import traceback
+from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
 from . import plan
-from .errors import CheckInputError, GradientMismatchError
+from .errors import CheckInputError, CheckTypeError
 from .pipeline import compare_gradient
 
-CASE_ATTRIBUTE = "gradient_case"
-DEFAULT_EXAMPLES = 25     # drawn points for a strategy
+CASE_ATTRIBUTE = "gradient_case"     # on the cost: its first declaration (the registry has all)
+REGISTRY = "__gradient_cases__"      # module global: the declarations made by that module's code
+DEFAULT_EXAMPLES = 25                # drawn points for a strategy
 
 
 @dataclass
 class Case:
+    """One declared gradient check on a cost.
+
+    Parameters
+    ----------
+    cost : callable
+        The cost, ``cost(params) -> float``.
+    gradient : callable, values like params, or None
+        The analytic gradient (None: autodiff derives it).
+    params : structure, callable or hypothesis strategy
+        Where to check: a parameter structure, a function of a numpy Generator
+        returning one, or a strategy drawing them.
+    options : dict
+        Keyword options of `compare_gradient`.
+    name : str
+        A label for messages (the ``name=`` given, else the cost's ``__name__``).
+    examples : int
+        Points drawn from a strategy.
+    expect_mismatch : bool
+        A planted bug: the case is as expected when the check fails.
+    """
+
     cost: object
     gradient: object
     params: object
     options: dict
     name: str
     examples: int = DEFAULT_EXAMPLES
-    expect_mismatch: bool = False   # a planted bug, kept as a demonstration or a canary
+    expect_mismatch: bool = False
+
+
+class _Declaration(NamedTuple):
+    """A registry entry: the case, the names bound to its cost in the declaring module
+    just before it was declared (the name it is then assigned to is new), and whether
+    name= was given."""
+    case: Case
+    taken: tuple
+    named: bool
+
+
+@dataclass
+class PointFailure:
+    """One distinct failure of a case whose params are drawn from a strategy.
+
+    Parameters
+    ----------
+    point : object
+        The params (shrunk by hypothesis) at which it shows.
+    report : GradientReport or None
+        The failing check at that point, when the check ran.
+    error : CheckInputError or None
+        Why the check could not run there (e.g. the cost raised at that point).
+    """
+
+    point: object
+    report: object = None
+    error: object = None
 
 
 @dataclass
 class CaseResult:
+    """The outcome of one declared case.
+
+    Parameters
+    ----------
+    case : Case
+        The declaration checked.
+    report : GradientReport
+        The check: for drawn params, that of the first distinct failure, or of the
+        last point when every drawn point passed.
+    point : object, optional
+        The params of `report`.
+    drawn : bool
+        True when params came from a hypothesis strategy.
+    checked : int
+        Points checked.
+    failures : tuple of PointFailure
+        For drawn params: one entry per distinct failure, each at its shrunk point.
+
+    Examples
+    --------
+    >>> import numpy as np, gradcheck_kit as gk
+    >>> from gradcheck_kit.cases import Case, check_case
+    >>> c = Case(lambda x: np.sum(x ** 2), lambda x: 2 * x, np.ones(2), {}, "square")
+    >>> result = check_case(c)
+    >>> result.passed, result.as_expected
+    (True, True)
+    """
+
     case: Case
-    report: object                 # the GradientReport of the last (or failing, shrunk) point
-    point: object = None           # the params of that report
-    drawn: bool = False            # params came from a hypothesis strategy
-    checked: int = 1               # points checked
-    notes: list = field(default_factory=list)
+    report: object
+    point: object = None
+    drawn: bool = False
+    checked: int = 1
+    failures: tuple = ()
 
     @property
     def passed(self) -> bool:
-        return self.report.passed
+        """True when every checked point agrees."""
+        return self.report.passed and not self.failures
+
+    @property
+    def errors(self) -> list:
+        """The drawn points at which the check could not run."""
+        return [f for f in self.failures if f.error is not None]
 
     @property
     def as_expected(self) -> bool:
-        """Passed, or failed where the case declares a planted bug."""
-        return self.report.passed != self.case.expect_mismatch
+        """Passed; or, for a declared planted bug, the bug was found and no point raised."""
+        if self.case.expect_mismatch:
+            return not self.passed and not self.errors
+        return self.passed
 
     def to_text(self) -> str:
-        text = self.report.to_text()
+        """The report text with what the case adds: planted-bug verdict, drawn points."""
+        if len(self.failures) > 1:
+            parts = [f"{len(self.failures)} distinct failures at points drawn from the "
+                     f"strategy, each shrunk by hypothesis:"]
+            parts += [f"failure {i} of {len(self.failures)}:\n{_failure_text(f)}"
+                      for i, f in enumerate(self.failures, 1)]
+        elif self.failures:
+            parts = [_failure_text(self.failures[0])]
+        else:
+            parts = [self.report.to_text()]
+            if self.drawn:
+                parts[0] += f"\n  checked at {self.checked} points drawn from the strategy"
         if self.case.expect_mismatch:
-            text += ("\n  (this case declares a planted bug: the mismatch above was expected)"
-                     if not self.passed else "\n  this case declares a planted bug, but every "
-                     "coordinate agrees: the check missed it")
-        if self.drawn and not self.passed:
-            text += f"\n  failing point (shrunk by hypothesis): {describe_point(self.point)}"
-        elif self.drawn:
-            text += f"\n  checked at {self.checked} points drawn from the strategy"
-        return text
+            parts[-1] += ("\n  (this case declares a planted bug: the mismatch above was "
+                          "expected)" if self.as_expected else
+                          "\n  this case declares a planted bug, but every coordinate agrees: "
+                          "the check missed it" if self.passed else
+                          "\n  this case declares a planted bug, but the check could not run "
+                          "at some drawn points")
+        return "\n".join(parts)
+
+
+def _failure_text(f: PointFailure) -> str:
+    body = f.report.to_text() if f.report is not None else \
+        f"the check could not run at a drawn point: {f.error}{_raised_where(f.error)}"
+    return f"{body}\n  failing point (shrunk by hypothesis): {describe_point(f.point)}"
+
+
+def _raised_where(error) -> str:
+    """' (raised at FILE:LINE in NAME)' for the user's exception behind an error, or ''."""
+    cause = error.__cause__ if error is not None else None
+    if cause is None or cause.__traceback__ is None:
+        return ""
+    frame = traceback.extract_tb(cause.__traceback__)[-1]
+    return f" (raised at {frame.filename}:{frame.lineno} in {frame.name})"
 
 
 def case(gradient=None, params=None, *, examples=DEFAULT_EXAMPLES, name=None,
          expect_mismatch=False, **options):
-    """Declare a gradient check on the decorated cost; returns the cost unchanged.
+    """Declare a gradient check on the decorated cost; return a decorator.
 
-    expect_mismatch=True declares a planted bug (a demonstration, or a canary that
-    the check still catches it): the case then succeeds when the check fails.
-    Options are compare_gradient's; all are checked here, when the decorator is
-    applied, so a misspelt or ill-typed declaration fails at once, not later as a
-    check that quietly means something else.
+    Every option is checked here, when the decorator is applied, so a misspelt or
+    ill-typed declaration fails at once with one line, not later as a check that
+    quietly means something else.
+
+    Parameters
+    ----------
+    gradient : callable, values like params, or None
+        The analytic gradient: ``gradient(params)`` with the structure of params,
+        or its values; None lets the cost's autodiff derive it.
+    params : structure, callable or hypothesis strategy
+        Required.  Where to check: an array, float, or dict / list / tuple nest of
+        those; a function of a numpy ``Generator`` returning one (called with the
+        seed's generator); or a hypothesis strategy (see
+        `gradcheck_kit.strategies`), checked at `examples` drawn points.
+    examples : int, default 25
+        Points drawn from a strategy.
+    name : str, optional
+        The case's label (default: the variable the declaration is assigned to,
+        else the cost's ``__name__``).
+    expect_mismatch : bool, default False
+        Declares a planted bug (a demonstration, or a canary that the check still
+        catches it): the case then succeeds when the check fails.
+    **options
+        Keyword options of `compare_gradient` (method, rtol, atol, seed, ...).
+
+    Returns
+    -------
+    callable
+        The decorator; it registers the case in the calling module and returns the
+        cost itself, unchanged.
+
+    Raises
+    ------
+    CheckTypeError
+        (a CheckInputError and a TypeError) An ill-typed option, arguments that
+        look swapped, a bare ``@gk.case`` without parentheses, or a decorated
+        object that is not callable.
+    CheckInputError
+        An unknown option, a value out of range, or a missing params.
+
+    Examples
+    --------
+    >>> import numpy as np, gradcheck_kit as gk
+    >>> @gk.case(gradient=lambda x: 2 * x, params=np.ones(3), method="central")
+    ... def square(x):
+    ...     return np.sum(x ** 2)
+    >>> float(square(np.ones(3)))
+    3.0
     """
-    if params is None:
-        if callable(gradient) and not options and name is None and expect_mismatch is False \
-                and examples == DEFAULT_EXAMPLES:
-            raise CheckInputError(
-                f"case: params= is required: write @gk.case(params=...) with parentheses (and "
-                f"gradient=... unless autograd derives it); a bare @gk.case passes the cost "
-                f"itself ({getattr(gradient, '__name__', type(gradient).__name__)!r} here) in "
-                f"place of the options")
-        raise CheckInputError("case: params= is required (a structure, a function of a numpy "
-                              "Generator, or a hypothesis strategy)")
+    __tracebackhide__ = True   # pytest: the user's declaration line is what matters
+    _check_arguments(gradient, params, examples, name, expect_mismatch, options)
     _check_declaration(examples, name, expect_mismatch, options)
 
     def declare(cost):
+        __tracebackhide__ = True
         if not callable(cost):
-            raise CheckInputError(f"case: decorates a cost function, got {type(cost).__name__}")
-        label = name or getattr(cost, "__name__", "cost")
-        setattr(cost, CASE_ATTRIBUTE, Case(cost, gradient, params, dict(options), label,
-                                           int(examples), bool(expect_mismatch)))
+            raise CheckTypeError(f"case: decorates a cost function, got {type(cost).__name__}")
+        declared = Case(cost, gradient, params, dict(options),
+                        name or getattr(cost, "__name__", "cost"), int(examples),
+                        bool(expect_mismatch))
+        _register(sys._getframe(1).f_globals, declared, named=name is not None)
         return cost
     return declare
 
 
+def _register(namespace: dict, declared: Case, named: bool) -> None:
+    """Add a declaration to the registry of the module whose code applied the decorator."""
+    cost = declared.cost
+    namespace.setdefault(REGISTRY, []).append(
+        _Declaration(declared, _names_bound(namespace, cost), named))
+    try:
+        if not isinstance(getattr(cost, CASE_ATTRIBUTE, None), Case):
+            setattr(cost, CASE_ATTRIBUTE, declared)
+    except (AttributeError, TypeError):  # a callable that takes no attributes (a builtin)
+        pass
+
+
+def _names_bound(namespace: dict, obj) -> tuple:
+    return tuple(k for k, v in list(namespace.items()) if v is obj and k != REGISTRY)
+
+
+def _check_arguments(gradient, params, examples, name, expect_mismatch, options) -> None:
+    """gradient and params: present, of a usable kind, and not given in swapped order."""
+    __tracebackhide__ = True
+    if params is None:
+        if callable(gradient) and not options and name is None and expect_mismatch is False \
+                and examples == DEFAULT_EXAMPLES and not is_strategy(gradient):
+            raise CheckTypeError(
+                f"case: params= is required: write @gk.case(params=...) with parentheses (and "
+                f"gradient=... unless autograd derives it); a bare @gk.case passes the cost "
+                f"itself ({getattr(gradient, '__name__', type(gradient).__name__)!r} here) in "
+                f"place of the options")
+        if gradient is not None and not callable(gradient):
+            raise CheckInputError(
+                f"case: params= is required; the first positional argument is the gradient "
+                f"(got {_kind(gradient)}): write gk.case(params=...) or "
+                f"gk.case(gradient=..., params=...)")
+        raise CheckInputError("case: params= is required (a structure, a function of a numpy "
+                              "Generator, or a hypothesis strategy)")
+    if is_strategy(gradient) or (gradient is not None and not callable(gradient)
+                                 and is_params_function(params)):
+        raise CheckTypeError(
+            f"case: gradient= got {_kind(gradient)} and params= {_kind(params)}: the arguments "
+            f"look swapped (the first positional argument is the gradient, the second the "
+            f"params); write gk.case(gradient=..., params=...)")
+    for label, value in (("gradient", gradient), ("params", params)):
+        if isinstance(value, (str, bytes)):
+            raise CheckTypeError(
+                f"case: {label}: expected "
+                + ("a function, values like params, or None" if label == "gradient" else
+                   "a structure of arrays or floats, a function of a numpy Generator, or a "
+                   "hypothesis strategy") + f", got {_kind(value)}")
+
+
+def _kind(value) -> str:
+    if is_strategy(value):
+        return "a hypothesis strategy"
+    if inspect.isfunction(value) or inspect.ismethod(value):
+        return f"a function ({value.__name__})"
+    if isinstance(value, (str, bytes)):
+        return f"a {type(value).__name__} ({value!r:.40})"
+    return f"a {type(value).__name__}"
+
+
 def case_options() -> list:
-    """The option names a case may carry: compare_gradient's keyword options."""
+    """The option names a case may carry: compare_gradient's keyword options.
+
+    Returns
+    -------
+    list of str
+
+    Examples
+    --------
+    >>> "method" in case_options()
+    True
+    """
     return [n for n, p in inspect.signature(compare_gradient).parameters.items()
             if p.kind == p.KEYWORD_ONLY]
 
 
-def _check_declaration(examples, name, expect_mismatch, options: dict) -> None:
-    """One-line CheckInputError for the first ill-formed option of a declaration."""
-    if not isinstance(expect_mismatch, (bool, np.bool_)):
-        raise CheckInputError(f"case: expect_mismatch: expected True or False, got "
-                              f"{expect_mismatch!r} ({type(expect_mismatch).__name__})")
-    if isinstance(examples, (bool, np.bool_)) or not isinstance(examples, numbers.Integral) \
-            or examples < 1:
-        raise CheckInputError(f"case: examples: expected a positive int (the number of points "
-                              f"drawn from a strategy), got {examples!r}")
-    if name is not None and (not isinstance(name, str) or not name):
-        raise CheckInputError(f"case: name: expected a non-empty str or None, got {name!r}")
+def check_options(options: dict, where: str = "case") -> None:
+    """Check keyword options of compare_gradient before any check runs.
+
+    Parameters
+    ----------
+    options : dict
+        Option name to value.
+    where : str
+        Where they come from, the start of every message.
+
+    Raises
+    ------
+    CheckInputError
+        One line: the first unknown name or ill-typed value.
+
+    Examples
+    --------
+    >>> check_options({"method": "central", "rtol": 1e-6})
+    >>> check_options({"methd": "central"})
+    Traceback (most recent call last):
+    ...
+    gradcheck_kit.errors.CheckInputError: case: unknown option 'methd'; ...
+    """
+    __tracebackhide__ = True
     known = case_options()
     unknown = [k for k in options if k not in known]
     if unknown:
-        raise CheckInputError(f"case: unknown option {unknown[0]!r}; expected examples, name, "
-                              f"expect_mismatch or one of {', '.join(known)}")
+        extra = "examples, name, expect_mismatch or " if where == "case" else ""
+        raise CheckInputError(f"{where}: unknown option {unknown[0]!r}; expected {extra}one of "
+                              f"{', '.join(known)}")
     try:
         plan.check_method(options.get("method", "auto"))
         plan.check_flags(seed=options.get("seed"), progress=options.get("progress"),
                          vectorized=options.get("vectorized", False))
         for key in ("rtol", "atol"):
             plan.check_tolerance(options.get(key), key)
-    except CheckInputError as exc:
-        raise CheckInputError(f"case: {exc}") from None
+    except CheckInputError as exc:   # the same kind (type or value), with where it came from
+        kind = CheckTypeError if isinstance(exc, TypeError) else CheckInputError
+        raise kind(f"{where}: {exc}") from None
+
+
+def _check_declaration(examples, name, expect_mismatch, options: dict) -> None:
+    """One-line CheckInputError for the first ill-formed option of a declaration."""
+    __tracebackhide__ = True
+    if not isinstance(expect_mismatch, (bool, np.bool_)):
+        raise CheckTypeError(f"case: expect_mismatch: expected True or False, got "
+                              f"{expect_mismatch!r} ({type(expect_mismatch).__name__})")
+    if isinstance(examples, (bool, np.bool_)) or not isinstance(examples, numbers.Integral) \
+            or examples < 1:
+        raise CheckInputError(f"case: examples: expected a positive int (the number of points "
+                              f"drawn from a strategy), got {examples!r}")
+    if name is not None and (not isinstance(name, str) or not name):
+        raise CheckTypeError(f"case: name: expected a non-empty str or None, got {name!r}")
+    check_options(options, "case")
 
 
 def declared_cases(namespace: dict) -> list:
-    """The cases declared on the module-level objects of a namespace, in definition order."""
-    return [(name, getattr(obj, CASE_ATTRIBUTE)) for name, obj in namespace.items()
-            if isinstance(getattr(obj, CASE_ATTRIBUTE, None), Case)]
+    """The cases declared by a module's code, in declaration order, with their labels.
+
+    Parameters
+    ----------
+    namespace : dict
+        The module's globals (``vars(module)``).
+
+    Returns
+    -------
+    list of (str, Case)
+        Labels are unique: the ``name=`` given, else the module variable the
+        declaration was assigned to, else the cost's ``__name__``; a repeated
+        label gets ``-2``, ``-3``, ...  Cases the module only imported are not
+        listed: they belong to the module that declared them.
+
+    Examples
+    --------
+    >>> import numpy as np, gradcheck_kit as gk
+    >>> ns = {"gk": gk, "np": np}
+    >>> exec("def cost(x):\\n    return np.sum(x ** 2)\\n"
+    ...      "right = gk.case(lambda x: 2 * x, params=np.ones(2))(cost)\\n"
+    ...      "canary = gk.case(lambda x: 3 * x, params=np.ones(2), expect_mismatch=True)(cost)",
+    ...      ns)
+    >>> [label for label, _ in declared_cases(ns)]
+    ['right', 'canary']
+    """
+    declarations = [d for d in namespace.get(REGISTRY, ()) if isinstance(d, _Declaration)]
+    labels, seen = [], {}
+    for k, d in enumerate(declarations):
+        label = d.case.name if d.named else _assigned_name(declarations, k, namespace)
+        seen[label] = seen.get(label, 0) + 1
+        labels.append(label if seen[label] == 1 else f"{label}-{seen[label]}")
+    return [(label, d.case) for label, d in zip(labels, declarations)]
+
+
+def _assigned_name(declarations: list, k: int, namespace: dict) -> str:
+    """The variable declaration k was assigned to: a name bound to its cost that was not
+    bound when it was declared, but was by the next declaration of the same cost (or now)."""
+    d = declarations[k]
+    later = next((e.taken for e in declarations[k + 1:] if e.case.cost is d.case.cost), None)
+    bound = later if later is not None else _names_bound(namespace, d.case.cost)
+    new = [n for n in bound if n not in d.taken]
+    return new[0] if new else d.case.name
+
+
+def is_params_function(obj) -> bool:
+    """True for params given as a function of a Generator: a callable that is neither a
+    strategy nor a parameter structure that happens to be callable (a torch module)."""
+    if not callable(obj) or is_strategy(obj):
+        return False
+    torch = sys.modules.get("torch")   # imported only by users of torch
+    return torch is None or not isinstance(obj, torch.nn.Module)
 
 
 def is_strategy(obj) -> bool:
+    """True for a hypothesis strategy (without importing hypothesis)."""
     hyp = sys.modules.get("hypothesis.strategies")
     return hyp is not None and isinstance(obj, hyp.SearchStrategy)
 
 
 def describe_point(point) -> str:
+    """A short, readable rendering of a parameter structure."""
     with np.printoptions(precision=6, threshold=20):
         if isinstance(point, dict):
             return "{" + ", ".join(f"{k!r}: {describe_point(v)}" for k, v in point.items()) + "}"
@@ -151,36 +458,117 @@ def describe_point(point) -> str:
 
 
 def check_case(c: Case, **overrides) -> CaseResult:
-    """Run one declared case; `overrides` (method, seed, ...) win over the declaration."""
+    """Run one declared case.
+
+    Parameters
+    ----------
+    c : Case
+        The declaration.
+    **overrides
+        compare_gradient options (method, seed, ...) that win over the declaration;
+        None values are ignored.
+
+    Returns
+    -------
+    CaseResult
+
+    Raises
+    ------
+    CheckInputError
+        The check cannot run: bad params or gradient, a params function that
+        raises, a cost that raises at the base point; for drawn params, a cost
+        that raises at every distinct failing point (one line per failure).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> c = Case(lambda x: np.sum(x ** 3), lambda x: 2 * x ** 2, np.ones(2), {}, "cube")
+    >>> check_case(c, method="central").passed
+    False
+    """
     options = {**c.options, **{k: v for k, v in overrides.items() if v is not None}}
     seed = options.get("seed")
     if is_strategy(c.params):
         return _check_drawn(c, options, seed)
-    params = c.params(np.random.default_rng(seed)) if callable(c.params) else c.params
+    params = _call_params(c, seed) if is_params_function(c.params) else c.params
     report = compare_gradient(c.cost, params, c.gradient, **options)
     return CaseResult(c, report, params)
 
 
+def _call_params(c: Case, seed):
+    """params from the case's params function, called with a Generator under `seed`."""
+    try:
+        return c.params(np.random.default_rng(seed))
+    except CheckInputError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - the user's function: say whose error it is
+        label = getattr(c.params, "__name__", type(c.params).__name__)
+        raise CheckInputError(f"params: the params function {label!r} (called with a numpy "
+                              f"Generator) raised {type(exc).__name__}: {exc}") from exc
+
+
+class _FailedAt(Exception):
+    """Raised inside hypothesis's test function so that the point travels with the failure;
+    hypothesis tells failures apart by where they were raised and by their cause."""
+
+    def __init__(self, failure: PointFailure):
+        super().__init__("gradient check failed at a drawn point")
+        self.failure = failure
+
+
 def _check_drawn(c: Case, options: dict, seed) -> CaseResult:
-    from hypothesis import HealthCheck, given, seed as fix_seed, settings
+    from hypothesis import HealthCheck, Verbosity, given, settings
+    from hypothesis import seed as fix_seed
 
     seen = {"count": 0}
 
-    @settings(max_examples=c.examples, deadline=None, database=None,
+    # quiet: the shrunk points are printed in our own text, not on captured stdout
+    @settings(max_examples=c.examples, deadline=None, database=None, verbosity=Verbosity.quiet,
               suppress_health_check=list(HealthCheck), derandomize=seed is None)
     @given(c.params)
     def run(point):
         seen["count"] += 1
-        report = compare_gradient(c.cost, point, c.gradient, **options)
+        try:
+            report = compare_gradient(c.cost, point, c.gradient, **options)
+        except CheckInputError as exc:
+            raise _FailedAt(PointFailure(point, error=exc)) from exc
         seen["report"], seen["point"] = report, point
         if not report.passed:
-            raise GradientMismatchError(report)
+            raise _FailedAt(PointFailure(point, report=report))
 
     if seed is not None:
         run = fix_seed(seed)(run)
     try:
         run()
-    except GradientMismatchError as exc:
-        # hypothesis replays the shrunk failing example last, so this is its report
-        return CaseResult(c, exc.report, seen.get("point"), drawn=True, checked=seen["count"])
-    return CaseResult(c, seen["report"], seen["point"], drawn=True, checked=seen["count"])
+    except Exception as exc:  # noqa: BLE001 - hypothesis raises one failure or a group
+        failures = _failures_in(exc)
+        if failures is None:
+            raise
+    else:
+        return CaseResult(c, seen["report"], seen["point"], drawn=True, checked=seen["count"])
+    with_report = [f for f in failures if f.report is not None]
+    if not with_report:
+        lines = [f"at {describe_point(f.point)}: {f.error}" for f in failures]
+        raise CheckInputError(
+            f"the check could not run at {len(failures)} distinct drawn "
+            f"point{'s' if len(failures) > 1 else ''} (shrunk by hypothesis): "
+            + ("\n  ".join([""] + lines) if len(lines) > 1 else lines[0])) \
+            from failures[0].error
+    first = with_report[0]
+    ordered = with_report + [f for f in failures if f.report is None]   # reports first
+    return CaseResult(c, first.report, first.point, drawn=True, checked=seen["count"],
+                      failures=tuple(ordered))
+
+
+def _failures_in(exc: BaseException):
+    """The PointFailures in what hypothesis raised (one, or a group of distinct ones);
+    None when something else went wrong."""
+    if isinstance(exc, _FailedAt):
+        return [exc.failure]
+    inner = getattr(exc, "exceptions", None)   # an ExceptionGroup (or its backport)
+    if isinstance(inner, (list, tuple)) and inner:
+        found = [_failures_in(e) for e in inner]
+        if all(f is not None for f in found):
+            return [f for part in found for f in part]
+    return None
+

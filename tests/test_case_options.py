@@ -109,3 +109,59 @@ def test_a_well_formed_declaration_returns_the_cost_and_checks_it():
     assert declaration.name == "cubic" and declaration.options == {
         "method": "central", "seed": 3, "rtol": 1e-6}
     assert check_case(declaration).passed
+
+
+def test_swapped_positional_arguments_are_refused():
+    """gk.case(params, gradient): the gradient slot holds the point, params a function."""
+    message = refused(gradient=X0, params=gradient)
+    assert "look swapped" in message and "gk.case(gradient=..., params=...)" in message
+    assert "a ndarray" in message and "a function (gradient)" in message
+
+
+def test_a_strategy_in_the_gradient_slot_is_refused_as_swapped():
+    from gradcheck_kit import strategies as gst
+    message = refused(gradient=gst.points((3,)), params=X0)
+    assert "gradient= got a hypothesis strategy" in message and "look swapped" in message
+
+
+def test_params_alone_in_the_first_slot_is_named():
+    with pytest.raises(gk.CheckInputError) as info:
+        gk.case(X0)(fresh_cost())
+    message = str(info.value)
+    assert "\n" not in message and "params= is required" in message
+    assert "the first positional argument is the gradient (got a ndarray)" in message
+
+
+@pytest.mark.parametrize("declaration, named", [
+    ({"gradient": gradient, "params": "abc"}, "params: expected a structure"),
+    ({"gradient": "grad", "params": X0}, "gradient: expected a function, values like params"),
+])
+def test_string_params_or_gradient_are_refused(declaration, named):
+    message = refused(**declaration)
+    assert named in message and "got a str" in message
+
+
+def test_a_params_function_that_raises_is_named_in_one_message():
+    def load_point(rng):
+        raise KeyError("pressure")
+    c = getattr(gk.case(gradient=gradient, params=load_point)(fresh_cost()), CASE_ATTRIBUTE)
+    with pytest.raises(gk.CheckInputError) as info:
+        check_case(c)
+    assert str(info.value) == ("params: the params function 'load_point' (called with a numpy "
+                               "Generator) raised KeyError: 'pressure'")
+    assert isinstance(info.value.__cause__, KeyError)
+
+
+def test_a_torch_module_as_params_is_a_structure_not_a_params_function():
+    """A torch module is callable, but it is the parameters: it must not be called with a
+    Generator, nor be taken for swapped arguments."""
+    torch = pytest.importorskip("torch")
+    torch.manual_seed(0)
+    layer = torch.nn.Linear(2, 1).double()
+    x = torch.tensor([[0.5, -1.0]], dtype=torch.float64)
+
+    def cost(module):
+        return (module(x) ** 2).sum()
+    declared = getattr(gk.case(params=layer)(cost), CASE_ATTRIBUTE)   # autograd of torch
+    result = check_case(declared)
+    assert result.passed and len(result.report.rows) == 3       # 2 weights and a bias

@@ -45,11 +45,85 @@ def test_right_wrong_and_fixture_give_one_failure_two_passes(pytester):
     text = result.stdout.str()
     assert "gradient checks that failed" in text and "b[2] (disagree" in text
     assert "pytest_plugin.py" not in text.split("short test summary")[0].split("FAILURES")[-1]
+    assert "_ gradient[bad_loss] _" in text            # the failure header is the item's name
     data = json.loads((pytester.path / "checks.json").read_text())
-    assert data["schema"] == "gradcheck_kit/session-report"
-    ids = {c["id"].split("::")[-1]: c["passed"] for c in data["checks"]}
-    assert ids == {"gradient[good_loss]": True, "gradient[bad_loss]": False,
-                   "test_with_fixture": True}
+    assert (data["schema"], data["schema_version"]) == ("gradcheck_kit/session-report", 2)
+    assert data["title"] == "gradient checks of a pytest session"
+    ids = {c["id"].split("::")[-1]: (c["kind"], c["passed"]) for c in data["checks"]}
+    assert ids == {"gradient[good_loss]": ("case", True), "gradient[bad_loss]": ("case", False),
+                   "test_with_fixture": ("fixture", True)}
+    bad = next(c for c in data["checks"] if c["id"].endswith("gradient[bad_loss]"))
+    assert bad["report"]["schema"] == "gradcheck_kit/gradient-report" and bad["error"] is None
+    assert bad["text"].startswith("FAIL ") and bad["drawn"] is None
+
+
+ASSERTING = textwrap.dedent("""
+    import numpy as np
+    import pytest
+    import gradcheck_kit as gk
+
+    def drag(v):
+        return float(np.sum(v ** 2 * np.abs(v)))
+
+    def drag_gradient_missing_abs(v):
+        return 3 * v ** 2          # right only where v >= 0: d/dv v^2 |v| = 3 v |v|
+
+    V = np.array([0.5, -2.0, 1.5])
+
+    def test_asserts_a_wrong_gradient():
+        gk.assert_gradient_matches(drag, V, drag_gradient_missing_abs)
+
+    def test_expects_the_mismatch():
+        with pytest.raises(gk.GradientMismatchError):
+            gk.assert_gradient_matches(drag, V, drag_gradient_missing_abs)
+
+    @pytest.mark.xfail(reason="known bug", strict=True)
+    def test_known_bug():
+        gk.assert_gradient_matches(drag, V, drag_gradient_missing_abs)
+""")
+
+
+def test_failed_assertions_in_ordinary_tests_are_listed_and_reported(pytester):
+    pytester.makepyfile(test_drag=ASSERTING)
+    result = pytester.runpytest("-p", "no:cacheprovider", "--gradient-report", "s.json")
+    result.assert_outcomes(passed=1, failed=1, xfailed=1)
+    summary = result.stdout.str().split("gradient checks that failed", 1)[1]
+    summary = summary.split("short test summary")[0]
+    # only the assertion that failed its test: not the one caught, not the expected failure
+    assert "test_drag.py::test_asserts_a_wrong_gradient: x[1] (disagree" in summary
+    assert "test_expects_the_mismatch" not in summary and "test_known_bug" not in summary
+    checks = json.loads((pytester.path / "s.json").read_text())["checks"]
+    assert [(c["id"].split("::")[-1], c["kind"], c["passed"]) for c in checks] == [
+        ("test_asserts_a_wrong_gradient", "assertion", False)]
+    assert checks[0]["report"]["counts"]["disagree"] == 1
+
+
+def test_the_plugin_keeps_no_report_alive_after_its_test(pytester):
+    """The session keeps what it prints, not the reports (which hold the cost, its runner
+    and base vector): a large cost object is freed once its test is done."""
+    pytester.makepyfile(test_memory=textwrap.dedent("""
+        import gc
+        import weakref
+        import numpy as np
+
+        class Cost:                        # stands for a model holding a large data set
+            def __call__(self, x):
+                return float(np.sum(x ** 2))
+
+        seen = []
+
+        def test_check(gradient_audit):
+            cost = Cost()
+            seen.append(weakref.ref(cost))
+            assert gradient_audit.compare(cost, np.ones(3), lambda x: 2 * x,
+                                          method="central").passed
+
+        def test_the_cost_is_gone():
+            gc.collect()
+            assert seen and seen[0]() is None
+    """))
+    result = pytester.runpytest("-p", "no:cacheprovider", "--gradient-report", "s.json")
+    result.assert_outcomes(passed=2)
 
 
 def test_item_ids_are_stable_and_readable(pytester):
