@@ -173,3 +173,20 @@ def test_users_arrays_are_unchanged():
     before = x.copy()
     gk.remainder_order(tanh_model, x, tanh_model_gradient, seed=0)
     np.testing.assert_array_equal(x, before)
+
+
+def test_a_direction_across_a_kink_decides_nothing_and_says_so():
+    """relu is piecewise linear (common practice): across its kink the remainder is O(h),
+    below the crossing it is rounding; a right gradient must not read as order 1."""
+    w = np.array([1.0, 2.0, 3.0])
+    result = gk.remainder_order(lambda v: np.sum(np.maximum(v, 0) * w),
+                                np.array([0.001, -0.002, 0.5]), lambda v: (v > 0) * w, seed=0)
+    assert not result.passed and result.kink_step is not None
+    assert "kink" in result.message and "nothing was decided" in result.message
+    assert not result.wrong
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_a_smooth_wrong_gradient_is_not_taken_for_a_kink(seed):
+    result = gk.remainder_order(exp_log, POINT, lambda v: 1.01 * exp_log_gradient(v), seed=seed)
+    assert result.kink_step is None and result.wrong and not result.passed
