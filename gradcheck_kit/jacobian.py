@@ -17,8 +17,11 @@ import inspect
 import numpy as np
 
 from . import plan, verdicts
-from .errors import CheckInputError
-from .pipeline import REPEAT_TOLERANCE, compare_gradient
+from .errors import (CheckInputError, CheckInterrupted, CheckTypeError, ExecutorError,
+                     interrupts_as_check_interrupted)
+from .frameworks import takes_framework_values
+from .pipeline import compare_gradient
+from .probes import REPEAT_TOLERANCE
 from .report import GradientReport, Row
 from .tree import coordinate_name, flatten, leaves_of, rebuild
 
@@ -40,8 +43,12 @@ class _OutputCache:
             self.values[key] = _flat_output(self.fun(params))
         return self.values[key]
 
-    def component(self, k):
-        return lambda params: self.vector(params)[k]
+    def component(self, k, name):
+        """Output k as a scalar cost; `name` is what the progress bar calls it."""
+        def output(params):
+            return self.vector(params)[k]
+        output.__qualname__ = output.__name__ = name
+        return output
 
 
 def _point_key(params):
@@ -101,7 +108,7 @@ def _analytic_jacobian(fun, params, jacobian, m, n, allowed_shapes):
             raise CheckInputError(f"jacobian function raised {type(exc).__name__}: {exc}") from exc
     else:
         J = jacobian
-    J = np.asarray(J, dtype=float)
+    J = _as_jacobian_array(J)
     if J.shape not in allowed_shapes:
         raise CheckInputError(f"jacobian: expected shape ({m}, {n}): {m} x {n} entries, outputs "
                               f"by inputs, flattened, got shape {J.shape}")
@@ -112,14 +119,35 @@ def _check_options(options: dict) -> None:
     """compare_gradient's options, checked before the function is first called."""
     known = [name for name, p in inspect.signature(compare_gradient).parameters.items()
              if p.kind == p.KEYWORD_ONLY]
-    unknown = sorted(set(options) - set(known))
-    if unknown:
-        raise CheckInputError(f"compare_jacobian: unknown option {unknown[0]!r}; expected one of "
-                              f"{', '.join(known)}")
-    plan.check_method(options.get("method", "auto"))
-    plan.check_flags(seed=options.get("seed"), progress=options.get("progress"))
-    for name in ("rtol", "atol"):
-        plan.check_tolerance(options.get(name), name)
+    plan.check_options("compare_jacobian: ", known, **options)
+    if options.get("vectorized"):
+        raise CheckInputError("compare_jacobian: vectorized=True is not supported")
+
+
+def _check_jacobian_argument(jacobian) -> None:
+    """None, a function of params, or an array-like of real numbers."""
+    if jacobian is None or callable(jacobian):
+        return
+    if isinstance(jacobian, (str, bytes, dict)) or isinstance(jacobian, np.ma.MaskedArray):
+        raise CheckTypeError(f"jacobian: expected None (autograd), a function of params or an "
+                             f"array of real numbers, got {type(jacobian).__name__}")
+
+
+def _as_jacobian_array(J) -> np.ndarray:
+    """The analytic Jacobian as a float array; a clear error for anything else."""
+    if isinstance(J, np.ma.MaskedArray):
+        raise CheckTypeError("jacobian: a masked array; masks are not supported (pass "
+                             ".filled(value))")
+    try:
+        array = np.asarray(J)
+    except Exception as exc:  # noqa: BLE001 - ragged lists and the like
+        raise CheckTypeError(f"jacobian: expected an array of real numbers, got "
+                             f"{type(J).__name__} ({type(exc).__name__}: {exc})") from exc
+    if not (np.issubdtype(array.dtype, np.floating) or np.issubdtype(array.dtype, np.integer)
+            or array.dtype == np.bool_):
+        raise CheckTypeError(f"jacobian: expected an array of real numbers, got "
+                             f"{type(J).__name__} of {array.dtype}")
+    return array.astype(float)
 
 
 def _call_at_base(fun, params, label="at the base point"):
@@ -193,24 +221,57 @@ def _repeat_problem(first: np.ndarray, again: np.ndarray, names: list):
             f"relative {relative:.3g}). {advice}")
 
 
+TITLE = "jacobian check"
+
+
+@interrupts_as_check_interrupted(TITLE)
+@takes_framework_values
 def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
     """Compare an analytic Jacobian with numeric derivatives, entry by entry.
 
-    `jacobian`: None (autograd), a function of params, or an array with one row
-    per flattened output and one column per flattened parameter coordinate.
-    Options are compare_gradient's (vectorized costs are not supported here).
-    Rows are named 'output wrt input', e.g. 'y[2] wrt W[1, 0]'.
+    Each output is checked as a scalar cost through compare_gradient; a cache makes
+    `fun` run once per point, not once per output.  The function is called twice at
+    the base point, each time on its own copy of params: outputs that differ fail the
+    check (a random function), and a copy it edited gives a note.
 
-    The function is called twice at the base point, each time on its own copy of
-    params: outputs that differ fail the check (a random function), and a copy
-    it edited gives a note.  The output cache then starts from the first value,
-    so these two calls cost what the per-output checks would have spent there.
+    Parameters
+    ----------
+    fun : callable
+        params -> an array, a number, or a dict / list / tuple nest of those.
+    params : ndarray, float, or a dict / list / tuple nest of those
+    jacobian : None, callable or array of float, shape (m, n)
+        None: autograd; a function of params; or an array with one row per flattened
+        output and one column per flattened parameter coordinate (for one array
+        parameter and an array output, shape output.shape + param.shape also works).
+    **options
+        compare_gradient's options (vectorized costs are not supported here).
+
+    Returns
+    -------
+    GradientReport
+        Rows named 'output wrt input', e.g. 'y[2] wrt W[1, 0]'.
+
+    Raises
+    ------
+    CheckTypeError, CheckInputError
+        For bad input, before `fun` is called (an unknown option, a jacobian that is not
+        an array of numbers), or when `fun` fails at the base point.
+    CheckInterrupted
+        On Ctrl-C, with the Jacobian's partial report (every output finished so far).
+    ExecutorError
+        When the executor stops working, with the Jacobian's partial report.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> report = compare_jacobian(lambda x: x ** 2, np.array([1.0, 3.0]),
+    ...                           lambda x: np.diag(2 * x))
+    >>> report.passed, len(report.rows)
+    (True, 4)
     """
-    if options.get("vectorized"):
-        raise CheckInputError("compare_jacobian: vectorized=True is not supported")
-    if not callable(fun):
-        raise CheckInputError(f"fun: expected a callable, got {type(fun).__name__}")
+    plan.check_callable(fun, "fun")
     _check_options(options)
+    _check_jacobian_argument(jacobian)
     base, layout = flatten(params)
     first_params = rebuild(base.copy(), layout)
     y0 = _call_at_base(fun, first_params)
@@ -236,15 +297,35 @@ def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
     if problem:  # a random function: no entry can be judged
         return GradientReport(rows=[], method=str(options.get("method", "auto")), evaluations=2,
                               total=m * n, notes=notes, problems=[problem],
-                              title="jacobian check", extra={"outputs": m, "inputs": n})
+                              title=TITLE, extra={"outputs": m, "inputs": n})
     cache = _OutputCache(fun)
     cache.remember(rebuild(base.copy(), layout), first)
+    label = getattr(fun, "__name__", None) or type(fun).__name__
+    parts = []
+    for k in range(m):
+        try:
+            parts.append(compare_gradient(cache.component(k, f"{label} {names[k]}"), params,
+                                          rebuild(J[k].copy(), layout), **options))
+        except (CheckInterrupted, ExecutorError) as stop:
+            # carry the Jacobian's partial report: the outputs finished, and this one's rows
+            if stop.report is not None:
+                parts.append(stop.report)
+            report = _jacobian_report(parts, names, n, notes, cache.calls + 2)
+            report.interrupted = isinstance(stop, CheckInterrupted)
+            if isinstance(stop, CheckInterrupted):
+                raise CheckInterrupted(report, TITLE, report.evaluations) from None
+            raise ExecutorError(str(stop), report) from None   # its problem came with it
+    return _jacobian_report(parts, names, n, notes, cache.calls + 2)
+
+
+def _jacobian_report(parts: list, names: list, n: int, notes: list,
+                     evaluations: int) -> GradientReport:
+    """One report from the per-output reports `parts` (output k is parts[k])."""
+    m = len(names)
     rows, hints, problems, methods = [], [], [], set()
     interrupted = False
     part_notes = []
-    for k in range(m):
-        part = compare_gradient(cache.component(k), params, rebuild(J[k].copy(), layout),
-                                **options)
+    for k, part in enumerate(parts):
         methods.add(part.method)
         interrupted |= part.interrupted
         for r in part.rows:
@@ -255,14 +336,14 @@ def compare_jacobian(fun, params, jacobian=None, **options) -> GradientReport:
                        if f"{names[k]}: {t}" not in part_notes]
         hints += [f"{names[k]}: {t}" for t in part.hints]
         problems += [p for p in part.problems if p not in problems]
-    notes += _merge_repeated(part_notes, names)
+    notes = notes + _merge_repeated(part_notes, names)
     a, nu = (np.array([getattr(r, f) for r in rows]) for f in ("analytic", "numeric"))
     rtol_s, atol_s = verdicts.suggest_tolerances(a, nu, np.array([r.verdict for r in rows]))
-    # the two base calls above, and the cache's calls everywhere else
-    return GradientReport(rows=rows, method="/".join(sorted(methods)), evaluations=cache.calls + 2,
-                          total=m * n, hints=hints, notes=notes, problems=problems,
-                          suggested_rtol=rtol_s, suggested_atol=atol_s,
-                          interrupted=interrupted, title="jacobian check",
+    # the two base calls, and the cache's calls everywhere else
+    return GradientReport(rows=rows, method="/".join(sorted(methods)) or "none",
+                          evaluations=evaluations, total=m * n, hints=hints, notes=notes,
+                          problems=problems, suggested_rtol=rtol_s, suggested_atol=atol_s,
+                          interrupted=interrupted, title=TITLE,
                           extra={"outputs": m, "inputs": n})
 
 

@@ -5,15 +5,23 @@ array, or a dict / list / tuple nest of those.  `flatten` turns it into one
 float64 vector plus a `Layout` that knows every leaf's place, shape and dtype;
 `rebuild` turns a vector (or a batch of vectors) back into the same structure,
 with fresh arrays, for each call of the cost.
+
+Refused, with a message naming the leaf: integer, boolean and complex leaves;
+masked arrays (a mask would be lost: every entry would be stepped and handed to
+the cost unmasked; pass `.filled(value)` or `.compressed()` and apply the mask in
+the cost) and np.matrix (the cost would receive ndarrays); and two leaves whose
+names coincide (keys 1 and '1', or 'a.b' beside {'a': {'b': ...}}), which
+reports and `coordinates=` could not tell apart.  The caller's arrays are only read.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import numpy as np
 
-from .errors import CheckInputError
+from .errors import CheckInputError, CheckTypeError
 
 ROOT_NAME = "x"  # name of a parameter that is the whole tree (a bare array or float)
 
@@ -35,9 +43,10 @@ class Layout:
     skeleton: Any        # nested ('dict'|'seq', type, keys, children) / ('leaf', i)
     size: int
 
-    @property
+    @cached_property
     def starts(self) -> np.ndarray:
-        return np.array([leaf.offset for leaf in self.leaves])
+        """The first flat position of every leaf (computed once per layout)."""
+        return np.array([leaf.offset for leaf in self.leaves], dtype=np.int64)
 
 
 def _leaf_name(path: tuple) -> str:
@@ -49,11 +58,48 @@ def _describe(value: Any) -> str:
     return f"dtype {dtype}" if dtype is not None else f"type {type(value).__name__}"
 
 
+def _refuse_array_subclass(value: Any, name: str, what: str) -> None:
+    """Masked arrays and np.matrix are refused rather than silently turned into plain
+    arrays: a mask would be lost (every entry, masked or not, would be stepped and
+    handed to the cost unmasked), and a matrix would come back as an ndarray, on
+    which * and ** mean something else."""
+    if isinstance(value, np.ma.MaskedArray):
+        raise CheckTypeError(
+            f"{what} leaf '{name}' is a masked array; masks are not supported, and dropping "
+            "the mask would check and pass on the masked entries too: pass the data without "
+            "the mask, e.g. .filled(value) for the whole array or .compressed() for the "
+            "unmasked entries, and apply the mask inside the cost")
+    if isinstance(value, np.matrix):
+        raise CheckTypeError(
+            f"{what} leaf '{name}' is a numpy matrix; expected an ndarray (np.asarray(m)): "
+            "the cost would receive ndarrays, on which * is not the matrix product")
+
+
+def _path_text(what: str, path: tuple) -> str:
+    """A leaf's place written as Python would index it: params['a'][0]."""
+    return what + "".join(f"[{key!r}]" for key in path)
+
+
+def _refuse_shared_names(what: str, paths: list) -> None:
+    """Two leaves with one name (keys 1 and '1', or 'a.b' beside {'a': {'b': ...}}) would
+    be two coordinates that reports, coordinates= and gradients cannot tell apart."""
+    seen = {}
+    for path in paths:
+        name = _leaf_name(path)
+        if name in seen:
+            raise CheckInputError(
+                f"{what}: {_path_text(what, seen[name])} and {_path_text(what, path)} would both "
+                f"be named '{name}' (names join the keys with '.'), so reports and "
+                "coordinates= could not tell them apart; rename one of the keys")
+        seen[name] = path
+
+
 def _check_leaf(value: Any, path: tuple, what: str) -> tuple:
     """Return (array, kind) for a float leaf, else raise naming the leaf."""
     name = _leaf_name(path)
+    _refuse_array_subclass(value, name, what)
     if isinstance(value, (bool, np.bool_)) or isinstance(value, (int, np.integer)):
-        raise CheckInputError(
+        raise CheckTypeError(
             f"{what} leaf '{name}' is an integer or boolean ({_describe(value)}); "
             "gradients need floating-point leaves: convert it with float(...) or .astype(float)")
     if isinstance(value, float):
@@ -64,30 +110,31 @@ def _check_leaf(value: Any, path: tuple, what: str) -> tuple:
         if np.issubdtype(value.dtype, np.floating):
             return value, "array"
         if np.issubdtype(value.dtype, np.integer) or value.dtype == np.bool_:
-            raise CheckInputError(
+            raise CheckTypeError(
                 f"{what} leaf '{name}' is an integer or boolean array ({value.dtype}); gradients "
                 "need floating-point leaves: convert it with .astype(float)")
         if np.issubdtype(value.dtype, np.complexfloating):
-            raise CheckInputError(
-                f"{what} leaf '{name}' is complex ({value.dtype}); only real parameters are checked "
-                "(split real and imaginary parts into two real leaves)")
-        raise CheckInputError(
+            raise CheckTypeError(
+                f"{what} leaf '{name}' is complex ({value.dtype}); only real parameters are "
+                "checked (split real and imaginary parts into two real leaves)")
+        raise CheckTypeError(
             f"{what} leaf '{name}' has {value.dtype} entries; expected a floating-point array "
             "(use .astype(float))")
     if isinstance(value, (complex, np.complexfloating)):
-        raise CheckInputError(f"{what} leaf '{name}' is complex; only real parameters are checked")
-    raise CheckInputError(
+        raise CheckTypeError(f"{what} leaf '{name}' is complex; only real parameters are checked")
+    raise CheckTypeError(
         f"{what} leaf '{name}' is a {type(value).__name__}; expected a float, a float ndarray, "
         "or a dict / list / tuple of those")
 
 
 def _as_values(value: Any, path: tuple, what: str) -> tuple:
     """Leaf of a gradient or step tree: any real numbers (ints too) will do."""
+    _refuse_array_subclass(value, _leaf_name(path), what)
     array = np.asarray(value)
     if not (np.issubdtype(array.dtype, np.floating) or np.issubdtype(array.dtype, np.integer)
             or array.dtype == np.bool_):
-        raise CheckInputError(f"{what} leaf '{_leaf_name(path)}' has {_describe(value)}; "
-                              "expected real numbers")
+        raise CheckTypeError(f"{what} leaf '{_leaf_name(path)}' has {_describe(value)}; "
+                             "expected real numbers")
     return array.astype(np.float64, copy=False), "array"
 
 
@@ -114,6 +161,7 @@ def flatten(params: Any, what: str = "params") -> tuple:
     skeleton = _walk(params, (), found, what)
     if not found:
         raise CheckInputError(f"{what} holds no parameters (an empty {type(params).__name__})")
+    _refuse_shared_names(what, [path for path, _, _ in found])
     leaves, offset = [], 0
     for path, array, kind in found:
         leaves.append(Leaf(path, _leaf_name(path), tuple(array.shape), array.dtype, kind,
@@ -203,13 +251,26 @@ def rebuild(vector: np.ndarray, layout: Layout, batched: bool = False) -> Any:
 def rebuilder(layout: Layout, complex_values: bool = False):
     """A function vector -> params for one layout, the hot path of serial evaluation.
 
-    A bare float64 array parameter, the commonest case, is a reshape and nothing more.
+    Where every leaf is a float64 array, each leaf is a reshaped view of the vector in
+    both the real and the complex case (complex128 is what `rebuild` gives a float64
+    leaf at a complex point): a bare array parameter, the commonest case, is one
+    reshape and nothing more.  Other layouts go through `rebuild`.
+
+    Examples
+    --------
+    >>> _, layout = flatten({"W": np.zeros((2, 2)), "b": np.zeros(1)})
+    >>> build = rebuilder(layout)
+    >>> build(np.arange(5.0))["W"].tolist()
+    [[0.0, 1.0], [2.0, 3.0]]
     """
-    if not complex_values and layout.skeleton[0] == "leaf":
-        leaf = layout.leaves[0]
-        if leaf.kind == "array" and leaf.dtype == np.float64:
-            shape = leaf.shape
+    if all(leaf.kind == "array" and leaf.dtype == np.float64 for leaf in layout.leaves):
+        if layout.skeleton[0] == "leaf":
+            shape = layout.leaves[0].shape
             return lambda vector: vector.reshape(shape)
+        spans = [(leaf.offset, leaf.offset + leaf.size, leaf.shape) for leaf in layout.leaves]
+        skeleton = layout.skeleton
+        return lambda vector: assemble(skeleton, [vector[lo:hi].reshape(shape)
+                                                  for lo, hi, shape in spans])
     return lambda vector: rebuild(vector, layout)
 
 
@@ -238,14 +299,86 @@ def leaves_of(tree) -> list:
     return [tree]
 
 
-def locate(layout: Layout, flat_index: int) -> tuple:
-    """(leaf, index tuple within the leaf) of a flat position."""
+def leaf_and_index(layout: Layout, flat_index: int) -> tuple:
+    """(leaf, index tuple within the leaf) of a flat position.
+
+    Examples
+    --------
+    >>> _, layout = flatten({"W": np.zeros((2, 3)), "b": np.zeros(2)})
+    >>> leaf, index = leaf_and_index(layout, 4)
+    >>> leaf.name, index
+    ('W', (1, 1))
+    """
     starts = layout.starts
     k = int(np.searchsorted(starts, flat_index, side="right") - 1)
     leaf = layout.leaves[k]
     local = flat_index - leaf.offset
     index = tuple(int(i) for i in np.unravel_index(local, leaf.shape)) if leaf.shape else ()
     return leaf, index
+
+
+def leaves_and_indices(layout: Layout, flat_indices) -> tuple:
+    """`leaf_and_index` for many flat positions at once, without a Python loop over them.
+
+    Parameters
+    ----------
+    layout : Layout
+    flat_indices : array_like of int, shape (k,)
+
+    Returns
+    -------
+    (ndarray of int, list of ndarray)
+        The leaf number of each position, and for each dimension of the index within
+        its leaf one int array (positions in leaves of fewer dimensions hold 0 there;
+        read only the first `len(leaf.shape)` of them).
+
+    Examples
+    --------
+    >>> _, layout = flatten({"W": np.zeros((2, 3)), "b": np.zeros(2)})
+    >>> numbers, index = leaves_and_indices(layout, [4, 6])
+    >>> numbers.tolist(), [i.tolist() for i in index]
+    ([0, 1], [[1, 0], [1, 0]])
+    """
+    flat = np.asarray(flat_indices, dtype=np.int64).reshape(-1)
+    numbers = np.searchsorted(layout.starts, flat, side="right") - 1
+    dims = max((len(leaf.shape) for leaf in layout.leaves), default=0)
+    index = [np.zeros(flat.size, dtype=np.int64) for _ in range(dims)]
+    for k in np.unique(numbers).tolist():
+        leaf = layout.leaves[k]
+        if not leaf.shape:
+            continue
+        mine = numbers == k
+        parts = np.unravel_index(flat[mine] - leaf.offset, leaf.shape)
+        for d, part in enumerate(parts):
+            index[d][mine] = part
+    return numbers, index
+
+
+def entry_names(layout: Layout, flat_indices) -> tuple:
+    """(names, leaf names, index tuples) of many flat positions, as `entry_name` writes
+    them, computed a leaf at a time.
+
+    Examples
+    --------
+    >>> _, layout = flatten({"W": np.zeros((2, 3)), "b": np.zeros(2)})
+    >>> entry_names(layout, [4, 6])
+    (['W[1, 1]', 'b[0]'], ['W', 'b'], [(1, 1), (0,)])
+    """
+    numbers, index = leaves_and_indices(layout, flat_indices)
+    names, leaf_names, tuples = [None] * numbers.size, [None] * numbers.size, \
+        [None] * numbers.size
+    for k in np.unique(numbers).tolist():
+        leaf = layout.leaves[k]
+        at = np.flatnonzero(numbers == k).tolist()
+        if leaf.shape:
+            parts = list(zip(*[index[d][at].tolist() for d in range(len(leaf.shape))]))
+        else:
+            parts = [()] * len(at)
+        for j, part in zip(at, parts):
+            names[j] = entry_name(leaf, part)
+            leaf_names[j] = leaf.name
+            tuples[j] = part
+    return names, leaf_names, tuples
 
 
 def entry_name(leaf: Leaf, index: tuple) -> str:
@@ -255,7 +388,7 @@ def entry_name(leaf: Leaf, index: tuple) -> str:
 
 def coordinate_name(layout: Layout, flat_index: int) -> str:
     """Readable name of one coordinate of the flat vector (see entry_name)."""
-    return entry_name(*locate(layout, flat_index))
+    return entry_name(*leaf_and_index(layout, flat_index))
 
 
 def leaf_of_each(layout: Layout) -> np.ndarray:
@@ -267,3 +400,8 @@ def leaf_eps(layout: Layout) -> np.ndarray:
     """Machine epsilon of each coordinate's own dtype."""
     return np.repeat([np.finfo(leaf.dtype).eps for leaf in layout.leaves],
                      [leaf.size for leaf in layout.leaves])
+
+
+# The old name, until pipeline.rows_of imports leaf_and_index (it was easy to confuse
+# with the group-testing module `locate`).
+locate = leaf_and_index
