@@ -42,10 +42,15 @@ def correct_cases(seeds=range(4)):
             out.append((f"{c.name}/seed{seed}", c.cost, c.gradient, c.params, c.per_sample))
     for p in mgh_problems.PROBLEMS:
         for label, x in (("x0", np.array(p.x0)), ("10x0", 10 * np.array(p.x0))):
-            residuals = (lambda p: lambda x: anp.array(p.residuals(x, mgh_problems.AG)) ** 2)(p)
+            residuals = _squared_residuals(p)
             out.append((f"{p.name}/{label}", p.cost, mgh_problems.float_gradient(p.name), x,
                         residuals))
     return out
+
+
+def _squared_residuals(problem):
+    """Per-residual terms of an MGH cost (each f_i^2), traceable by autograd."""
+    return lambda x: anp.array(problem.residuals(x, mgh_problems.AG)) ** 2
 
 
 def _term_matrix(per_sample, params, layout):

@@ -7,6 +7,7 @@ import os
 
 import autograd.numpy  # noqa: F401
 import numpy.fft  # noqa: F401
+import pytest
 from hypothesis import HealthCheck, settings
 
 settings.register_profile("project", deadline=None, max_examples=60,
@@ -17,3 +18,15 @@ settings.register_profile("ci", parent=settings.get_profile("project"), derandom
 settings.load_profile("ci" if os.environ.get("CI") else "project")
 
 pytest_plugins = ["pytester"]
+
+
+@pytest.fixture(scope="session")
+def mgh_derivatives():
+    """The module mgh_problems with sympy's differentiation of the whole More, Garbow &
+    Hillstrom set done once per session (per worker under xdist), here, so that
+    `--durations` shows that one-time cost as this fixture's setup and each test's own
+    time apart from it.  Use its exact_gradient(name, x) and float_gradient(name)."""
+    import mgh_problems
+
+    mgh_problems.differentiate_all()
+    return mgh_problems

@@ -7,6 +7,17 @@ and minimisers whose gradient is exactly zero where the paper gives them in
 closed form.  Each residual function takes the coordinates and a math namespace,
 so one definition serves numpy (and complex numbers), autograd and sympy; the
 exact gradient comes from sympy (see `exact_gradient`).
+
+Of the paper's 35 problems, 29 are here: [1]-[10], [12]-[18], [20]-[23], [25]-[32].
+Left out (numbering from memory): [11] Gulf research and development, [19] Osborne 2,
+[24] penalty II, [33] and [34] the linear rank-1 functions, [35] Chebyquad.  The
+variable-dimension problems use one n each: the length of their x0 in PROBLEMS.
+
+`helical_valley` is the paper's [7] on its x1 < 0 branch, from the paper's start.
+`helical_valley_right` is our own variant, not a problem of the paper: the same function
+on its x1 > 0 branch (where the paper's minimiser (1, 0, 0) lies), from a start of our
+own choosing, (1, 0.1, 0.2).  Splitting [7] at x1 = 0 keeps each piece one smooth
+formula for sympy.
 """
 from __future__ import annotations
 
@@ -72,7 +83,7 @@ def helical_valley_left(x, m):  # [7] on its x1 < 0 branch (the standard start (
     return [10 * (x[2] - 10 * theta), 10 * (m.sqrt(x[0] ** 2 + x[1] ** 2) - 1), x[2]]
 
 
-def helical_valley_right(x, m):  # x1 > 0 branch (the minimiser (1, 0, 0))
+def helical_valley_right(x, m):  # our variant: [7] on its x1 > 0 branch (see the docstring)
     theta = m.atan(x[1] / x[0]) / (2 * m.pi)
     return [10 * (x[2] - 10 * theta), 10 * (m.sqrt(x[0] ** 2 + x[1] ** 2) - 1), x[2]]
 
@@ -300,6 +311,15 @@ def _symbolic_gradient(name):
     expr = p.cost(list(xs), SYM)
     grad = [sympy.diff(expr, v) for v in xs]
     return xs, sympy.lambdify(xs, grad, modules="mpmath"), sympy.lambdify(xs, grad, modules="numpy")
+
+
+def differentiate_all() -> None:
+    """Run sympy's differentiation of every problem now (about 8 s on the development
+    machine); later calls of exact_gradient and float_gradient reuse it.  The session
+    fixture `mgh_derivatives` (conftest.py) calls this, so the cost shows up once, in that
+    fixture's setup, and not in whichever test happens to ask first."""
+    for p in PROBLEMS:
+        _symbolic_gradient(p.name)
 
 
 def exact_gradient(name, x) -> np.ndarray:

@@ -1,11 +1,13 @@
 """The error estimate is a promise (DESIGN.md): |numeric - exact| <= error_estimate for at
 least 99.9% of coordinates, per method, over a broad corpus against exact derivatives.
 
-These tests measure it on the quick corpus of calibration_corpus.py.  The promise is not
-met by every method yet (issue 9, item 4 stays open): the bar below is 99.5% where a method
-meets it, and otherwise the level measured on 2026-12-02 less a small margin, so that a
-change which makes the estimates worse fails here.  Exact gradients raise no alarm with
-central, complex step and auto.  The corpus itself is checked
+These tests measure it on the quick corpus of calibration_corpus.py.  Measured on the full
+corpus on 2026-12-02 (python tests/calibration.py): five-point, Richardson and the complex
+step 100%, auto 99.95%, central 99.80%, forward 99.43%, backward 99.46%.  One-sided and
+central differences model the curvature their own points cannot see, so the promise is not
+met by those three yet (issue 9, item 4): they are held at their measured level less a
+margin, the others at BAR, so that a change which makes the estimates worse fails here.
+Exact gradients raise no alarm with any method.  The corpus itself is checked
 too, so that a wrong "exact" gradient fails here rather than blaming the engine:
 high-precision five-point differences of each case's mpmath twin (80 digits), the twin against
 the float64 cost, the gradients of record (DLMF formulas through scipy.special, statsmodels'
@@ -21,10 +23,10 @@ import pytest
 import calibration_corpus as corpus
 import mgh_problems
 
-BAR = 0.995
-# Measured on the quick corpus (tests/calibration.py --quick), minus a margin: the methods
-# that do not meet BAR yet.  Raise these as the error model improves.
-MEASURED = {"forward": 0.975, "backward": 0.975, "five-point": 0.915, "richardson": 0.955}
+BAR = 0.998
+# Measured on the quick corpus (tests/calibration.py --quick: 99.36%, 99.36%, 99.76%), minus a
+# margin: the methods that do not meet BAR yet.  Raise these as the error model improves.
+MEASURED = {"forward": 0.99, "backward": 0.99, "central": 0.995}
 
 
 @functools.lru_cache(maxsize=None)
@@ -49,7 +51,7 @@ def test_error_estimates_cover_the_actual_error(method):
     assert result["fraction"] >= MEASURED.get(method, BAR), summary(result)
 
 
-@pytest.mark.parametrize("method", ["central", "complex-step", "auto"])
+@pytest.mark.parametrize("method", corpus.METHODS)
 def test_exact_gradients_raise_no_alarm(method):
     result = quick_coverage(method)
     assert result["false_alarms"] == 0, summary(result)

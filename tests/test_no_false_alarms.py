@@ -15,7 +15,7 @@ import pytest
 
 import gradcheck_kit as gk
 from ml_losses import FACTORIES
-from mgh_problems import PROBLEMS, float_gradient
+from mgh_problems import PROBLEMS
 
 
 def mgh_points():
@@ -27,16 +27,17 @@ def mgh_points():
 
 
 @pytest.mark.parametrize("problem, x", list(mgh_points()))
-def test_mgh_correct_gradient_passes(problem, x):
-    report = gk.compare_gradient(problem.cost, x, float_gradient(problem.name))
+def test_mgh_correct_gradient_passes(mgh_derivatives, problem, x):
+    report = gk.compare_gradient(problem.cost, x, mgh_derivatives.float_gradient(problem.name))
     assert report.passed, report.to_text()
 
 
 @pytest.mark.parametrize("problem, x", [pytest.param(p, np.array(m), id=p.name)
                                         for p in PROBLEMS for m in p.minimisers])
 @pytest.mark.parametrize("method", ["richardson", "five-point", "complex-step"])
-def test_mgh_minimisers_pass_with_every_accurate_method(problem, x, method):
-    report = gk.compare_gradient(problem.cost, x, float_gradient(problem.name), method=method)
+def test_mgh_minimisers_pass_with_every_accurate_method(mgh_derivatives, problem, x, method):
+    report = gk.compare_gradient(problem.cost, x, mgh_derivatives.float_gradient(problem.name),
+                                 method=method)
     assert report.passed, report.to_text()
 
 

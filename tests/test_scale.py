@@ -90,7 +90,7 @@ def test_executors_give_identical_results_in_order(make):
 def test_a_cost_a_process_pool_cannot_pickle_gets_the_way_out():
     def local_cost(x):
         return float(np.sum(x ** 2))
-    with pytest.raises(Exception):
+    with pytest.raises((pickle.PicklingError, AttributeError)):  # a local function
         pickle.dumps(local_cost)
     with ProcessPoolExecutor(1) as pool, pytest.raises(gk.CheckInputError) as info:
         gk.compare_gradient(local_cost, X0, lambda x: 2 * x, executor=pool)
@@ -173,7 +173,7 @@ def test_progress_bar_can_be_forced(capsys):
     assert capsys.readouterr().err == ""
 
 
-def test_interrupt_ends_with_the_partial_report(capsys):
+def test_interrupt_ends_with_the_partial_report():
     calls = {"n": 0}
 
     def interrupted_cost(x):
@@ -183,10 +183,11 @@ def test_interrupt_ends_with_the_partial_report(capsys):
         return cost(x)
     with pytest.raises(KeyboardInterrupt) as info:
         gk.compare_gradient(interrupted_cost, X0, grad, method="central")
+    assert isinstance(info.value, gk.CheckInterrupted)
     report = info.value.report
     assert report.interrupted and not report.passed
     assert 0 < len(report.rows) < N and all(r.verdict == "agree" for r in report.rows)
-    assert "INTERRUPTED" in capsys.readouterr().err
+    assert "INTERRUPTED" in report.to_text()     # the front ends print it
 
 
 def test_an_executor_whose_tasks_fail_gives_error_rows_not_a_crash():

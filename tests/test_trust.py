@@ -202,3 +202,17 @@ def test_a_quantized_cost_never_passes_a_zero_gradient():
     report = gk.compare_gradient(cost, x, lambda v: np.zeros(3), method="richardson")
     assert not report.passed, report.to_text()
     assert not any(r.verdict == "agree" and r.relative_error > 0.5 for r in report.rows)
+
+
+# --- a zero gradient where slope and curvature vanish (x^3 at 0) ------------------------
+@pytest.mark.parametrize("method", ["central", "forward", "five-point", "richardson", "auto"])
+def test_a_zero_gradient_at_an_inflection_agrees_and_a_small_error_there_is_caught(method):
+    # x^3 / 3 at 0: f' = f'' = 0, so a central difference returns its own truncation
+    # h^2 / 3, "far" from 0 relatively but negligible next to the cost's variation (its
+    # third derivative); common practice (Taylor's theorem).
+    def cost(x):
+        return np.sum(x ** 3) / 3
+    right = gk.compare_gradient(cost, np.zeros(3), lambda x: x ** 2, method=method)
+    assert right.passed and right.counts == {"agree": 3}, right
+    wrong = gk.compare_gradient(cost, np.zeros(3), lambda x: x ** 2 + 1e-3, method=method)
+    assert wrong.counts == {"disagree": 3}, wrong
