@@ -6,59 +6,34 @@ its own beyond choosing what to evaluate next.
 """
 from __future__ import annotations
 
-import sys
+import inspect
+import os
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from . import plan, probes, stencils, verdicts
+from .numeric import Numeric, numeric_derivatives, term_sizes
 from .analytic import analytic_values
-from .errors import CheckInputError, CheckInterrupted
-from .evaluate import CostRunner
-from .report import GradientReport, Row
-from .tree import Layout, coordinate_name, entry_name, flatten, leaf_eps, locate, rebuild
+from .errors import CheckInputError, LongCheckWarning, interrupts_as_check_interrupted
+from .evaluate import CostRunner, SeededCall
+from .frameworks import takes_framework_values
+from .probes import Setup
+from .hints import central_error, central_tolerances
+from .hints import hints as mismatch_hints
+from .hints import uphill_hint
+from . import notes as say
+from .reevaluate import Reevaluation, remainder_along
+from .report import GradientReport, Row, outside_note
+from .tree import coordinate_name, entry_name, flatten, leaf_and_index, leaf_eps, rebuild
 
-# Five-point and Richardson redo a coordinate with a shorter step when the gap to their
-# embedded lower-order value is above this fraction of the gradient's term size (see
-# verdicts.term_scale) and dominates rounding: the automatic step max(|x|, 1) * eps^(1/5)
-# was too long for the coordinate's curvature (e.g. x4, x5 of Osborne 1 in More, Garbow
-# & Hillstrom, whose cost varies on a scale of 1/300 in them).
-REFINE_ABOVE = 1e-7
-NOISY_ABOVE = 1e4        # relative noise this many epsilons above rounding counts as noise
-REPEAT_TOLERANCE = 10.0  # two calls at one point may differ by this many eps (threaded sums)
-# A stencil that meets a non-finite value (a log or sqrt stepped across 0) is redone with
-# its step cut by SHORTEN_BY, up to SHORTEN_TIMES times (2^-18 of the step at most), then
-# one-sided on the side where the cost is defined.
-SHORTEN_BY = 8.0
-# Cost values this small next to their variation over a coordinate's scale count as 0.
-NEAR_ZERO = 1e-6
-SHORTEN_TIMES = 6
-
-
-@dataclass
-class Setup:
-    """What every check needs after the cost has run at the base point and its noise lines."""
-    runner: CostRunner
-    base: np.ndarray
-    layout: Layout
-    f0: float
-    eps_f: float                 # relative precision of the cost's values
-    eps: np.ndarray              # per coordinate: max(leaf dtype eps, eps_f), for steps
-    scale: np.ndarray
-    line: stencils.LineFeatures
-    noisy: bool                  # noise well above rounding: steps were enlarged for it
-    notes: list = field(default_factory=list)
-    problems: list = field(default_factory=list)
-    lines: probes.Lines = None
 
 
 def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
             repeat=True) -> Setup:
     """Check the inputs, call the cost at the base point (twice) and along the noise lines."""
-    if not callable(cost):
-        raise CheckInputError(f"cost: expected a callable taking params, got "
-                              f"{type(cost).__name__}")
+    plan.check_callable(cost, "cost")
     base, layout = flatten(params)
     runner = CostRunner(cost, layout, base, vectorized=vectorized, executor=executor,
                         progress=progress)
@@ -66,316 +41,120 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
     notes, problems = [], []
     changed = runner.changed_leaves(after)
     if changed:
-        notes.append(f"the cost modifies its input in place (it changed {', '.join(changed)} "
-                     "during a call); every call here gets its own copy, so your arrays are "
-                     "unchanged, but code that reuses the arrays after calling the cost is not")
+        notes.append(say.edits_input(changed))
     if repeat:
         again, _ = runner.at_base("at the base point, called a second time")
-        if abs(again - f0) > REPEAT_TOLERANCE * np.finfo(float).eps * max(abs(f0), abs(again)):
-            problems.append(
-                f"the cost is not deterministic: two calls at the same parameters returned "
-                f"{f0!r} and {again!r} (difference {abs(again - f0):.3g}, relative "
-                f"{abs(again - f0) / max(abs(f0), abs(again), 1e-300):.3g}). Numeric derivatives "
-                "of a random cost are meaningless: seed its random generator, fix the "
-                "mini-batch, and switch off dropout or sampling before checking the gradient")
-    notes += _non_finite_params_note(base, layout)
+        if probes.repeat_differs(f0, again):
+            problems.append(say.not_deterministic(f0, again))
+    bad = np.flatnonzero(~np.isfinite(base))
+    if bad.size:
+        notes.append(say.non_finite_params([coordinate_name(layout, int(i)) for i in bad]))
     scale = stencils.scale_of(base)
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
     lines = probes.measure_lines(runner, base, scale, f0,
                                  max(dtype_eps, float(np.max(leaf_eps(layout)))))
-    line = lines.features
-    # Noise counts relative to the size of the cost's values, or of its variation over a
-    # coordinate's scale where larger: at a point where the cost is 0 (x |x| at 0), a
-    # tiny absolute level would otherwise pass for large relative noise.
-    size = float(np.max(np.abs(line.values), initial=abs(f0)))
-    if size <= NEAR_ZERO * max(line.curvature_s2, line.slope):
-        size = max(line.curvature_s2, line.slope)
-    eps_f = probes.relative_precision(runner.output_dtype, line.noise, size)
-    noisy = eps_f > NOISY_ABOVE * dtype_eps
-    # Steps grow only for costs noisy well beyond rounding (More & Wild, ACM TOMS 38(3),
-    # 2012); rounding-level noise enlarged by cancellation only enters the error estimates.
-    eps = np.maximum(leaf_eps(layout), eps_f if noisy else dtype_eps)
-    notes += precision_notes(runner.output_dtype, layout)
+    eps_f, noisy, eps = probes.precision(lines, f0, runner.output_dtype, leaf_eps(layout))
+    notes += say.lower_precision(runner.output_dtype,
+                                 [leaf.name for leaf in layout.leaves if leaf.dtype != np.float64])
     if lines.undefined:
-        notes.append("the cost is not finite (or fails) at some points of the noise probe near "
-                     "the base point: the noise level was measured on fewer points")
+        notes.append(say.undefined_on_lines())
     if lines.quantized:
-        notes.append("the cost's values are piecewise constant along a random line (they repeat "
-                      "exactly and jump in between): a rounded, integer-valued or quantized "
-                      "output, whose derivative is zero almost everywhere; numeric differences "
-                      "only measure its jumps")
+        notes.append(say.quantized())
     if noisy:
-        notes.append(f"the cost is noisy: its values carry noise of about {line.noise:.2g} "
-                     f"({eps_f:.2g} relative, measured along three lines after More & Wild); steps "
-                     "and error estimates allow for it")
-    return Setup(runner, base, layout, f0, eps_f, eps, scale, line, noisy, notes, problems,
-                 lines)
+        notes.append(say.noisy(lines.features.noise, eps_f))
+    return Setup(runner, base, layout, f0, eps_f, eps, scale, lines.features, noisy, notes,
+                 problems, lines)
 
 
-def _non_finite_params_note(base, layout) -> list:
-    bad = np.flatnonzero(~np.isfinite(base))
-    if bad.size == 0:
-        return []
-    names = [coordinate_name(layout, int(i)) for i in bad]
-    return [f"params hold non-finite entries ({verdicts.name_list(names)}): the cost is "
-            "finite here, so it does not read them; their rows compare derivatives taken at a "
-            "non-finite point"]
+def resolve_method(setup: Setup, method: str, seed, complex_safe=None) -> tuple:
+    """The method to use, and the notes that say why: (method, notes).
 
-
-def precision_notes(output_dtype, layout: Layout) -> list:
-    notes = []
-    if np.finfo(output_dtype).eps > np.finfo(np.float64).eps:
-        notes.append(f"the cost returns {np.dtype(output_dtype).name} values: steps and error "
-                     f"estimates use its precision (eps {np.finfo(output_dtype).eps:.3g}), so "
-                     "agreement means less than in float64")
-    low = [leaf.name for leaf in layout.leaves if leaf.dtype != np.float64]
-    if low:
-        notes.append(f"parameters {', '.join(low)} are stored in lower precision; their "
-                     "steps are sized for it")
-    return notes
-
-
-@dataclass
-class Numeric:
-    coords: np.ndarray
-    h: np.ndarray                # step of each coordinate (the pass its value came from)
-    values: np.ndarray           # (coordinates, offsets) cost values of that pass
-    estimates: stencils.Estimates
-    failed: np.ndarray           # a stencil point raised for this coordinate
-    details: list                # text per coordinate ("" when fine)
-    done: np.ndarray             # finished before an interrupt
-    method: str
-    undefined: list = field(default_factory=list)   # coordinates that met non-finite values
-
-
-def numeric_derivatives(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray,
-                        refine: bool = True) -> Numeric:
-    """Numeric derivatives at `coords`; non-finite stencil points are redone with shorter
-    or one-sided steps, and fourth-order methods refine badly scaled coordinates once."""
-    numeric = _one_pass(setup, method, coords, h[coords])
-    if setup.runner.interrupted:
-        return numeric
-    _redo_undefined(setup, numeric)
-    if method in stencils.REFINABLE and refine and not setup.runner.interrupted:
-        _refine(setup, numeric)
-    return numeric
-
-
-def _refine(setup: Setup, numeric: Numeric) -> None:
-    est = numeric.estimates
-    terms = term_scale(setup, numeric)
-    finite = np.isfinite(numeric.values.real).all(axis=1)
-    # The step balance uses the plain rounding bound of the stencil's values, not the
-    # margins the error estimate adds (stencils.SUM_ROUNDING and the terms' rounding).
-    rounding = stencils.VALUE_ROUNDING[numeric.method] * est.noise / numeric.h
-    redo = (est.gap > REFINE_ABOVE * terms) & (est.gap > 64 * rounding) & \
-        ~numeric.failed & finite
-    if not redo.any():
-        return
-    idx = np.flatnonzero(redo)
-    balance = est.take(idx)
-    balance.rounding = rounding[idx]
-    h2 = stencils.refined_steps(balance, numeric.h[idx])
-    second = _one_pass(setup, numeric.method, numeric.coords[idx], h2)
-    ok = ~second.failed & second.done & np.isfinite(second.values.real).all(axis=1)
-    plain = second.estimates.take(np.arange(idx.size))
-    plain.rounding = stencils.VALUE_ROUNDING[numeric.method] * plain.noise / h2
-    use = stencils.pick_refined(balance, plain, terms[idx]) & ok
-    first_d = est.derivative[idx].copy()
-    est.put(idx[use], second.estimates.take(np.flatnonzero(use)))
-    numeric.h[idx[use]] = h2[use]
-    numeric.values[idx[use]] = second.values[use]
-    # The chosen value's error: the distance between the two values, or its own modelled
-    # truncation (plus its rounding, kept), whichever is larger.
-    chosen = est.take(idx)
-    modelled = stencils.extrapolation_error(chosen, terms[idx]) - chosen.rounding
-    distance = np.abs(first_d - second.estimates.derivative)
-    est.truncation[idx[ok]] = np.maximum(distance, modelled)[ok]
-
-
-def _redo_undefined(setup: Setup, numeric: Numeric) -> None:
-    """Coordinates whose stencil met a non-finite value: shorter steps, then one side.
-
-    Only these coordinates are redone; the others keep their values untouched.
-    """
-    if numeric.method == "complex-step":
-        return
-    bad = np.flatnonzero(~np.isfinite(numeric.values).all(axis=1) & ~numeric.failed &
-                         numeric.done)
-    if bad.size == 0:
-        return
-    first_values = numeric.values[bad].copy()
-    h = numeric.h[bad].copy()
-    todo = np.ones(bad.size, dtype=bool)
-    for _ in range(SHORTEN_TIMES):
-        if not todo.any() or setup.runner.interrupted:
-            break
-        h[todo] /= SHORTEN_BY
-        k = np.flatnonzero(todo)
-        again = _one_pass(setup, numeric.method, numeric.coords[bad[k]], h[k])
-        fine = np.isfinite(again.values).all(axis=1) & ~again.failed & again.done
-        _adopt(numeric, bad[k[fine]], again, np.flatnonzero(fine))
-        # The first finite step may still reach close to where the cost is undefined (its
-        # derivatives grow fast there): one step shorter again is used, trusted to within
-        # the distance between the two values scaled by the stencil's order.
-        k_fine = k[fine]
-        if k_fine.size:
-            inner = _one_pass(setup, numeric.method, numeric.coords[bad[k_fine]],
-                              h[k_fine] / SHORTEN_BY)
-            ok = np.isfinite(inner.values).all(axis=1) & ~inner.failed & inner.done
-            shrink = SHORTEN_BY ** stencils.ORDER[numeric.method] - 1
-            distance = np.abs(inner.estimates.derivative -
-                              numeric.estimates.derivative[bad[k_fine]])
-            inner.estimates.truncation = np.maximum(inner.estimates.truncation,
-                                                    2 * distance / shrink)
-            _adopt(numeric, bad[k_fine[ok]], inner, np.flatnonzero(ok))
-            h[k_fine[ok]] /= SHORTEN_BY
-        for j, i in zip(bad[k[fine]], k[fine]):
-            numeric.details[j] = (f"the cost is not finite at {_offsets_text(numeric, first_values[i], j)}"
-                                  f": step shortened to {h[i]:.3g}")
-        todo[k[fine]] = False
-    rest = bad[todo]
-    if rest.size and not setup.runner.interrupted:
-        _one_sided(setup, numeric, rest, first_values[todo])
-    numeric.undefined = [int(numeric.coords[j]) for j in bad]
-
-
-def _offsets_text(numeric: Numeric, values, j) -> str:
-    offsets = np.array(stencils.OFFSETS[numeric.method]) * numeric.h[j]
-    where = [f"{o:+.3g}" for o, v in zip(offsets, values) if not np.isfinite(v)]
-    return "x" + ", x".join(where)
-
-
-def _adopt(numeric: Numeric, positions, other: Numeric, from_positions) -> None:
-    """Take `other`'s results at from_positions into numeric at positions."""
-    if len(positions) == 0:
-        return
-    numeric.estimates.put(positions, other.estimates.take(from_positions))
-    numeric.h[positions] = other.h[from_positions]
-    numeric.values[positions] = other.values[from_positions]
-
-
-def _one_sided(setup: Setup, numeric: Numeric, positions, first_values) -> None:
-    """One-sided differences at steps h and h/2 on the side where the cost was finite,
-    extrapolated: 2 D(h/2) - D(h), trusted to |D(h/2) - D(h)| plus rounding."""
-    offsets = np.array(stencils.OFFSETS[numeric.method])
-    h = numeric.h[positions]
-    sides = []
-    for values in first_values:
-        finite_plus = np.isfinite(values[offsets > 0]).all()
-        finite_minus = np.isfinite(values[offsets < 0]).all()
-        sides.append(1.0 if finite_plus or not finite_minus else -1.0)
-    sides = np.array(sides)
-    coords = numeric.coords[positions]
-    where = np.repeat(coords, 2).tolist()
-    amounts = (np.stack([sides * h, sides * h / 2], axis=1)).ravel().tolist()
-    run = setup.runner.run(where, amounts, label="one-sided differences")
-    v = run.values.real.reshape(-1, 2)
-    far = sides * (v[:, 0] - setup.f0) / h
-    near = sides * (v[:, 1] - setup.f0) / (h / 2)
-    d = 2 * near - far
-    noise = np.maximum(setup.eps_f * np.max(np.abs(v), axis=1, initial=abs(setup.f0)),
-                       setup.line.noise)
-    for k, j in enumerate(positions):
-        side = "forward" if sides[k] > 0 else "backward"
-        ok = np.isfinite(v[k]).all() and not any(2 * k + r in run.failures for r in (0, 1))
-        est = numeric.estimates
-        if ok:
-            est.derivative[j], est.truncation[j] = d[k], abs(near[k] - far[k])
-            est.rounding[j], est.gap[j], est.curvature[j] = 10 * noise[k] / h[k], 0.0, 0.0
-            numeric.details[j] = (f"the cost is not finite at "
-                                  f"{_offsets_text(numeric, first_values[k], j)}: {side} "
-                                  "differences used")
-        else:
-            est.derivative[j] = np.nan
-            numeric.details[j] = (f"the cost is not finite near here (at "
-                                  f"{_offsets_text(numeric, first_values[k], j)}, and on both "
-                                  "sides at every shorter step tried)")
-
-
-def _one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Numeric:
-    """One stencil per coordinate; h is aligned with coords."""
-    full = np.zeros(setup.base.size)
-    full[coords] = h
-    where, amounts = plan.requests(method, coords, full)
-    with warnings.catch_warnings():
-        if method == "complex-step":  # a cast that drops the imaginary part is an error here
-            warnings.simplefilter("error", np.exceptions.ComplexWarning)
-        results = setup.runner.run(where, amounts, label=f"{method} differences")
-    k = len(stencils.OFFSETS[method])
-    values = results.values.reshape(len(coords), k)
-    failed = np.zeros(len(coords), dtype=bool)
-    details = [""] * len(coords)
-    for number, exc in sorted(results.failures.items()):
-        c = number // k
-        if not failed[c]:
-            details[c] = f"cost raised {type(exc).__name__}: {exc}"
-        failed[c] = True
-    done = ~np.isnan(values).any(axis=1) | failed
-    if not results.interrupted:
-        done[:] = True
-    s = setup.scale[coords]
-    with np.errstate(all="ignore"):
-        est = stencils.combine(method, values, setup.f0, h, setup.eps_f, s, setup.line.noise,
-                               setup.line.curvature_s2 / s ** 2, 8 * setup.line.third / s ** 3)
-    return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
-
-
-def term_scale(setup: Setup, numeric: Numeric) -> np.ndarray:
-    """Per coordinate, the size of the terms a gradient entry is summed from (see verdicts)."""
-    est = numeric.estimates
-    s = setup.scale[numeric.coords]
-    seen = np.maximum(est.curvature * s + setup.line.curvature_s2 / s, setup.line.slope / s)
-    return verdicts.term_scale(est.derivative, setup.f0, s, seen)
-
-
-def resolve_method(setup: Setup, method: str, seed, complex_safe=None) -> str:
-    """'auto': the complex step where a probe shows the cost is complex-safe, else Richardson.
-
-    A noisy cost gets Richardson with noise-sized steps: the complex step would
-    differentiate the noise itself.  A requested complex step is probed too: where
-    the cost is not complex-safe it falls back to Richardson, with a warning, unless
-    complex_safe=True (the caller vouches for the cost).  complex_safe=False rules the
-    complex step out for 'auto'.
+    'auto': the complex step where a probe shows the cost is complex-safe, else
+    Richardson.  A noisy cost gets Richardson with noise-sized steps: the complex step
+    would differentiate the noise itself.  A requested complex step is probed too:
+    where the cost is not complex-safe it falls back to Richardson, with a warning,
+    unless complex_safe=True (the caller vouches for the cost).  complex_safe=False
+    rules the complex step out for 'auto'.
     """
     if method not in ("auto", "complex-step"):
-        return method
+        return method, []
     if complex_safe is True:
-        return "complex-step"
+        return "complex-step", []
     if method == "auto" and complex_safe is False:
-        setup.notes.append("method auto chose richardson: complex_safe=False")
-        return "richardson"
+        return "richardson", ["method auto chose richardson: complex_safe=False"]
     if method == "auto" and setup.noisy:
-        setup.notes.append("method auto chose richardson: the cost is noisy")
-        return "richardson"
+        return "richardson", ["method auto chose richardson: the cost is noisy"]
     safe, reason = probes.complex_safety(setup.runner, setup.base, setup.scale, setup.f0,
                                          setup.eps_f, setup.eps, setup.line.noise, seed)
     if safe:
-        return "complex-step"
+        return "complex-step", []
     if method == "auto":
-        setup.notes.append(f"method auto chose richardson: {reason}")
-    else:
-        message = (f"method complex-step was asked for, but {reason}; richardson was used "
-                   "instead (pass complex_safe=True to insist on the complex step)")
-        warnings.warn(message, RuntimeWarning, stacklevel=3)
-        setup.notes.append(message)
-    return "richardson"
+        return "richardson", [f"method auto chose richardson: {reason}"]
+    message = (f"method complex-step was asked for, but {reason}; richardson was used "
+               "instead (pass complex_safe=True to insist on the complex step)")
+    warnings.warn(message, RuntimeWarning, stacklevel=5)   # past both entry decorators
+    return "richardson", [message]
 
 
+@interrupts_as_check_interrupted("numeric gradient")
+@takes_framework_values
 def numeric_gradient(cost, params, *, method="central", step=None, vectorized=False,
                      executor=None, complex_safe=None):
-    """Numerical gradient of a scalar cost, in the structure (and float dtypes) of params."""
-    plan.check_method(method)
-    plan.check_flags(vectorized=vectorized, complex_safe=complex_safe)
+    """Numerical gradient of a scalar cost, in the structure (and float dtypes) of params.
+
+    Parameters
+    ----------
+    cost : callable
+        ``cost(params) -> float`` (a 0-d array or a one-element result is taken too).
+    params : array_like, float, or dict / list / tuple nest of those
+        The point; float leaves of any shape and dtype; torch tensors, modules and JAX
+        arrays with the optional extras.  Never modified.
+    method : {"central", "forward", "backward", "five-point", "richardson", "complex-step", "auto"}
+        The stencil.  "auto": the complex step where a probe finds the cost complex-safe,
+        else Richardson.
+    step : float or a nest like params, optional
+        Steps, absolute; automatic (and refined for fourth-order stencils) when None.
+    vectorized : bool
+        The cost takes a batch (one extra leading axis on every leaf) and returns one
+        value per row.
+    executor : concurrent.futures.Executor, optional
+        Spread the calls over it (a process pool, a Dask client's executor).
+    complex_safe : bool, optional
+        True: use the complex step without probing; False: never.
+
+    Returns
+    -------
+    Same structure as params
+        The derivative of each entry, float64 (float32 leaves stay float32).
+
+    Raises
+    ------
+    CheckInputError, CheckTypeError
+        Bad params or options, or a cost that fails or is not finite at params.
+    CheckInterrupted
+        Ctrl-C (no partial gradient is returned).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> g = numeric_gradient(lambda x: np.sum(x ** 3), np.array([1.0, 2.0]))
+    >>> bool(np.allclose(g, [3.0, 12.0]))
+    True
+    """
+    plan.check_options(method=method, step=step, vectorized=vectorized, executor=executor,
+                       complex_safe=complex_safe)
     setup = prepare(cost, params, vectorized=vectorized, executor=executor, repeat=False)
-    method = resolve_method(setup, method, None, complex_safe)
+    method, _ = resolve_method(setup, method, None, complex_safe)
     coords = np.arange(setup.layout.size)
     h = plan.steps(method, setup.base, setup.layout, step, setup.eps)
     numeric = numeric_derivatives(setup, method, coords, h, refine=step is None)
+    if setup.runner.interrupted:    # Ctrl-C or a failed executor: no half-made gradient
+        raise setup.runner.stop_error(None, "numeric gradient")
     if numeric.failed.any():
         bad = [numeric.details[j] for j in np.flatnonzero(numeric.failed)[:3]]
         warnings.warn(f"numeric_gradient: {int(numeric.failed.sum())} coordinates are NaN because "
-                      f"the cost failed near them, e.g. {bad[0]}", RuntimeWarning, stacklevel=2)
+                      f"the cost failed near them, e.g. {bad[0]}", RuntimeWarning,
+                      stacklevel=3)   # the caller, past the interrupt decorator
     return rebuild(numeric.estimates.derivative.astype(np.float64), setup.layout)
 
 
@@ -388,6 +167,7 @@ class Comparison:
     verdict: np.ndarray
     kinks: stencils.Kinks
     details: list
+    notes: list = field(default_factory=list)   # what a later stage found out about these rows
 
 
 def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
@@ -396,7 +176,7 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
     analytic values (float64's epsilon when None)."""
     a = analytic[numeric.coords]
     est = numeric.estimates
-    terms = term_scale(setup, numeric)
+    terms = term_sizes(setup, numeric)
     with np.errstate(all="ignore"):
         allowed = verdicts.allowed_difference(a, est.derivative, est.error, terms=terms,
                                               eps_f=setup.eps_f, rtol=rtol, atol=atol,
@@ -409,7 +189,8 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
     if rtol is None and atol is None:
         # A quantized cost's jumps inflate the term scale: no value is negligible there.
         quantized = setup.lines is not None and setup.lines.quantized
-        verdict = verdicts.mark_undecided(verdict, a, est, 0 * terms if quantized else terms,
+        sizes = 0 * terms if quantized else term_sizes(setup, numeric, third=True)
+        verdict = verdicts.mark_undecided(verdict, a, est, sizes,
                                           details, setup.noisy,
                                           setup.line.noise)
     return Comparison(numeric, analytic, allowed, verdict, kinks, details)
@@ -440,165 +221,357 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     settled = np.isin(again.verdict, ("agree", "kink"))
     if not settled.any():
         return first
-    num = first.numeric
-    num.estimates.put(bad[settled], again.numeric.estimates.take(np.flatnonzero(settled)))
-    first.verdict[bad[settled]] = again.verdict[settled]
-    first.allowed[bad[settled]] = again.allowed[settled]
+    numeric = first.numeric.copy()
+    numeric.estimates.put(bad[settled], again.numeric.estimates.take(np.flatnonzero(settled)))
+    verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
+    verdict[bad[settled]] = again.verdict[settled]
+    allowed[bad[settled]] = again.allowed[settled]
     for j, k in zip(bad[settled], np.flatnonzero(settled)):
-        first.details[j] = again.details[k] or "decided by real differences"
+        details[j] = again.details[k] or "decided by real differences"
     agreed = [coordinate_name(setup.layout, int(c))
               for c, v in zip(coords[settled], again.verdict[settled]) if v == "agree"]
+    notes = list(first.notes)
     if agreed:
-        setup.notes.append(f"{len(agreed)} coordinates where the {method} differences "
-                           f"disagreed were "
-                           f"rechecked with real differences and pass: "
-                           f"{verdicts.name_list(agreed)}")
-    return first
+        notes.append(say.rechecked(agreed, method))
+    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details,
+                   notes=notes)
 
 
 def rows_of(setup: Setup, comp: Comparison) -> list:
+    """The report's rows of the finished coordinates; names and numbers are computed a
+    column at a time (tree.entry_names), the Row objects once each."""
+    from .tree import entry_names    # move to the module's imports
     num = comp.numeric
-    a = comp.analytic[num.coords]
-    n = num.estimates.derivative
-    rel = verdicts.relative_error(a, n)
-    err = num.estimates.error
-    rows = []
-    for j, flat in enumerate(num.coords):
-        if not num.done[j]:
-            continue
-        leaf, index = locate(setup.layout, int(flat))
-        rows.append(Row(entry_name(leaf, index), leaf.name, index, int(flat), float(a[j]),
-                        float(n[j]), float(abs(a[j] - n[j])), float(rel[j]), float(err[j]),
-                        str(comp.verdict[j]), comp.details[j]))
-    return rows
+    done = np.flatnonzero(num.done)
+    a = comp.analytic[num.coords][done]
+    n = num.estimates.derivative[done]
+    names, leaf_names, indices = entry_names(setup.layout, num.coords[done])
+    # One str object per verdict, shared by its rows (not one per row).
+    verdict = comp.verdict[done]
+    shared = {v: str(v) for v in np.unique(verdict).tolist()}
+    columns = zip(names, leaf_names, indices, num.coords[done].tolist(), a.tolist(),
+                  n.tolist(), np.abs(a - n).tolist(), verdicts.relative_error(a, n).tolist(),
+                  num.estimates.error[done].tolist(), [shared[v] for v in verdict.tolist()],
+                  [comp.details[j] for j in done.tolist()])
+    return [Row(*column) for column in columns]
 
 
+@interrupts_as_check_interrupted("gradient check")
+@takes_framework_values
 def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, rtol=None,
                      atol=None, coordinates=None, seed=None, executor=None, vectorized=False,
-                     progress=None, complex_safe=None,
-                     allow_undecided=False) -> GradientReport:
-    """Compare the analytic gradient with numeric derivatives, coordinate by coordinate."""
-    plan.check_method(method)
-    plan.check_flags(seed=seed, progress=progress, vectorized=vectorized,
-                     complex_safe=complex_safe, allow_undecided=allow_undecided)
-    rtol = plan.check_tolerance(rtol, "rtol")
-    atol = plan.check_tolerance(atol, "atol")
+                     progress=None, complex_safe=None, allow_undecided=False,
+                     with_rng=False) -> GradientReport:
+    """Compare the analytic gradient with numeric derivatives, coordinate by coordinate.
+
+    Each coordinate's numeric derivative comes with an error estimate; it agrees with
+    the analytic value when they differ by less than the estimate allows (or by numpy's
+    ``atol + rtol * |numeric|`` when either tolerance is given).  Agreement at one
+    point does not prove the gradient right elsewhere.
+
+    Parameters
+    ----------
+    cost : callable
+        ``cost(params) -> float``; ``cost(params, rng)`` with ``with_rng=True``.
+    params : array_like, float, or dict / list / tuple nest of those
+        The point (torch tensors, modules and JAX arrays with the optional extras).
+        Never modified.
+    gradient : callable, array-like nest, or None
+        The analytic gradient: a function of params (like the cost), its values in the
+        structure of params, or None for autograd's (the framework's for torch / JAX).
+    method : str
+        "auto" (default), "central", "forward", "backward", "five-point", "richardson"
+        or "complex-step".
+    step : float or a nest like params, optional
+        Absolute steps; automatic when None.
+    rtol, atol : float, optional
+        Fixed tolerances instead of the error estimates.
+    coordinates : int, dict, or None
+        All coordinates (None), k sampled per parameter (int), or lists of flat indices
+        per parameter name (dict).
+    seed : int, optional
+        Seeds the sampled coordinates, the probe directions and with_rng's draw.
+    executor : concurrent.futures.Executor, optional
+        Spread the cost's calls over it.
+    vectorized : bool
+        The cost takes a batch (a leading axis on every leaf) and returns one value each.
+    progress : bool, optional
+        Show a progress bar (None: when the sweep takes more than a few seconds).
+    complex_safe : bool, optional
+        True: use the complex step without probing; False: never for "auto".
+    allow_undecided : bool
+        Let a check in which no coordinate could be decided (noisy) pass.
+    with_rng : bool
+        Call ``cost(params, rng)`` and ``gradient(params, rng)`` with a generator seeded
+        the same way at every call, so a random cost's one draw is checked exactly.
+
+    Returns
+    -------
+    GradientReport
+        ``.passed``, ``.rows`` (one per checked coordinate), ``.mismatches``, ``.hints``,
+        ``.notes``, ``.problems``, suggested tolerances; ``str()`` is the text report.
+
+    Raises
+    ------
+    CheckInputError, CheckTypeError
+        Bad params, gradient or options, or a cost that fails at params.
+    CheckInterrupted
+        Ctrl-C or a failed executor; ``.report`` holds the coordinates finished.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> report = compare_gradient(lambda w: np.sum(w ** 2), np.array([1.0, -2.0]),
+    ...                           lambda w: 2 * w)
+    >>> report.passed
+    True
+    >>> compare_gradient(lambda w: np.sum(w ** 2), np.array([1.0, -2.0]),
+    ...                  lambda w: w).passed
+    False
+    """
+    checked = plan.check_options(method=method, step=step, rtol=rtol, atol=atol,
+                                 coordinates=coordinates, seed=seed, executor=executor,
+                                 vectorized=vectorized, progress=progress,
+                                 complex_safe=complex_safe, allow_undecided=allow_undecided,
+                                 with_rng=with_rng)
+    rtol, atol = checked["rtol"], checked["atol"]
+    plan.check_gradient(gradient)
+    early_notes = []
+    _check_rng_argument(cost, with_rng)
+    if with_rng:
+        cost, gradient, early_notes = _seeded(cost, gradient, seed, vectorized)
     setup = prepare(cost, params, vectorized=vectorized, executor=executor, progress=progress)
+    if setup.runner.interrupted:    # during the noise lines or probes: nothing checked yet
+        raise setup.runner.stop_error(None)
     analytic, analytic_eps = analytic_values(cost, setup.base, setup.layout, gradient,
                                              vectorized)
     if setup.problems:  # a random cost: no coordinate can be judged
         return GradientReport(rows=[], method=method, evaluations=setup.runner.evaluations,
                               total=setup.layout.size, notes=setup.notes,
                               problems=setup.problems)
+    notes = list(early_notes)
     if probes.flat_but_sloped(setup.lines, analytic, setup.f0):
-        setup.notes.append("the cost does not change along a random line through the point "
-                           "although the analytic gradient says it should: it is piecewise "
-                           "constant (rounded or quantized) here, or the gradient is wrong")
+        notes.append(say.flat_but_sloped())
     coords = plan.choose_coordinates(setup.layout, coordinates, seed, analytic)
-    used = resolve_method(setup, method, seed, complex_safe)
+    used, method_notes = resolve_method(setup, method, seed, complex_safe)
+    method_notes += warn_if_long(setup.runner, used, coords.size, setup.layout.size)
     h = plan.steps(used, setup.base, setup.layout, step, setup.eps)
     numeric = numeric_derivatives(setup, used, coords, h, refine=step is None)
     comp = compare(setup, numeric, analytic, rtol, atol, analytic_eps)
     comp = second_opinion(setup, comp, rtol, atol, analytic_eps)
     report = finish(setup, comp, used, analytic_eps=analytic_eps,
-                    allow_undecided=allow_undecided)
-    report.source = Source(setup, analytic, h, used)
-    if report.interrupted:
-        # Ctrl-C: show what was finished, then let the interrupt go on
-        print(report.to_text(), file=sys.stderr)
-        raise CheckInterrupted(report)
+                    allow_undecided=allow_undecided,
+                    probe_unsampled=_worth_probing(setup.layout.size - coords.size, used),
+                    seed=seed,
+                    notes=notes + method_notes)
+    report.reevaluation = Reevaluation(setup.runner.cost, setup.layout, setup.base.copy(),
+                                       np.array(analytic, dtype=float), h, used, setup.f0,
+                                       setup.eps_f, setup.line.noise, setup.runner.vectorized)
+    stop = setup.runner.stop_error(report)   # Ctrl-C or a failed executor: the partial report
+    if stop is not None:
+        raise stop
     return report
 
 
+# The remainder-order probe through all coordinates costs about 34 evaluations: a sampled
+# check runs it where the coordinates left out would have cost more than this to check.
+PROBE_UNSAMPLED_ABOVE = 100
+
+
+def _worth_probing(left_out: int, method: str) -> bool:
+    return left_out * len(plan.OFFSETS[method]) > PROBE_UNSAMPLED_ABOVE
+
+
+# A check estimated to run longer than this says so before it starts its sweep.
+LONG_CHECK_SECONDS = 120.0
+
+
+def warn_if_long(runner: CostRunner, method: str, checked: int, total: int) -> list:
+    """After the first evaluations: the sweep's time from the measured time of one call.
+    Past LONG_CHECK_SECONDS, a LongCheckWarning (printed at once by the command line) and
+    the same sentence as a note, with the quicker ways to check."""
+    calls = len(plan.OFFSETS[method]) * checked
+    seconds = calls * runner.seconds_per_call
+    if runner.executor is not None:
+        seconds /= os.cpu_count() or 1          # at best; the executor does not say
+    if seconds <= LONG_CHECK_SECONDS:
+        return []
+    message = say.long_check(seconds, calls, runner.seconds_per_call, sampled=checked < total,
+                             spread=runner.executor is not None or runner.vectorized)
+    warnings.warn(message, LongCheckWarning, stacklevel=5)   # the caller of compare_gradient
+    return [message]
+
+
+def _required_positional(fun) -> int:
+    """How many positional arguments `fun` requires (-1 where its signature is unknown)."""
+    try:
+        parameters = inspect.signature(fun).parameters.values()
+    except (TypeError, ValueError):
+        return -1
+    kinds = (inspect.Parameter.POSITIONAL_ONLY, inspect.Parameter.POSITIONAL_OR_KEYWORD)
+    return sum(1 for p in parameters if p.kind in kinds and p.default is p.empty)
+
+
+def _check_rng_argument(cost, with_rng) -> None:
+    """A cost of (params, rng) without with_rng, or with_rng for a cost of params alone:
+    one sentence now, instead of a TypeError from inside the first call."""
+    required = _required_positional(cost)
+    if not with_rng and required == 2:
+        raise CheckInputError("cost: it requires two arguments; if the second is a random "
+                              "generator, pass with_rng=True to call it as cost(params, rng) "
+                              "with the same seed at every call")
+    if with_rng and required in (0, 1) and not _takes_two(cost):
+        raise CheckInputError("cost: with_rng=True calls cost(params, rng), but this cost "
+                              "takes one argument; drop with_rng or add the rng argument")
+
+
+def _takes_two(fun) -> bool:
+    try:
+        inspect.signature(fun).bind(None, None)
+    except TypeError:
+        return False
+    except ValueError:
+        return True
+    return True
+
+
+def _seeded(cost, gradient, seed, vectorized) -> tuple:
+    """with_rng=True: cost(params, rng) and gradient(params, rng) with one seed for every
+    call.  Returns the wrapped cost and gradient and the note that says which seed."""
+    if vectorized:
+        raise CheckInputError("with_rng=True and vectorized=True cannot be combined: a batch "
+                              "call gets one generator, so its rows would not share a draw; "
+                              "pass vectorized=False")
+    draw = int(np.random.SeedSequence(seed).generate_state(1)[0])
+    cost = SeededCall(cost, draw)
+    if callable(gradient):
+        gradient = SeededCall(gradient, draw)
+    return cost, gradient, [say.seeded_draw(draw, callable(gradient))]
+
+
+def _suggested_tolerances(setup: Setup, comp: Comparison, method: str) -> tuple:
+    """(rtol, atol) the agreeing rows pass with this method, and (rtol, atol) for central
+    differences where they differ (what people pin in their own tests; from the central
+    error model at these points, no evaluations spent), else (None, None)."""
+    done = comp.numeric.done
+    coords = comp.numeric.coords
+    a, est = comp.analytic[coords], comp.numeric.estimates
+    n = est.derivative
+    rtol_s, atol_s = verdicts.suggest_tolerances(a[done], n[done], comp.verdict[done])
+    if method == "central" or rtol_s is None:
+        return rtol_s, atol_s, None, None
+    s = setup.scale[coords]
+    error = central_error(n, setup.f0, setup.base[coords], setup.eps[coords], setup.eps_f,
+                          setup.line.noise,
+                          np.maximum(est.curvature, setup.line.curvature_s2 / s ** 2),
+                          8 * setup.line.third / s ** 3)
+    central = central_tolerances(a[done], n[done], comp.verdict[done], error[done])
+    if central == (rtol_s, atol_s):
+        return rtol_s, atol_s, None, None
+    return (rtol_s, atol_s) + tuple(central)
+
+
 def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
-           analytic_eps=None, allow_undecided=False):
-    """Rows, hints, notes and suggested tolerances: the report of one comparison."""
+           analytic_eps=None, allow_undecided=False, probe_unsampled=False, seed=None,
+           notes=(), problems=()):
+    """Rows, hints, notes and suggested tolerances: the report of one comparison.
+
+    probe_unsampled: the coordinates are a sample, so the remainder-order probe also
+    runs along a random direction through all of them (a few dozen evaluations).
+    notes, problems: what the earlier stages found (method choice, probes, a search that
+    ran out of budget), added after the setup's own."""
     rows = rows_of(setup, comp)
     done = comp.numeric.done
-    a = comp.analytic[comp.numeric.coords]
-    n = comp.numeric.estimates.derivative
-    rtol_s, atol_s = verdicts.suggest_tolerances(a[done], n[done], comp.verdict[done])
-    hints = verdicts.hints(setup.layout, comp.numeric.coords[done], a[done], n[done],
-                           comp.verdict[done], comp.allowed[done])
-    notes = list(setup.notes)
-    problems = list(setup.problems)
+    coords = comp.numeric.coords
+    a = comp.analytic[coords]
+    est = comp.numeric.estimates
+    n = est.derivative
+    rtol_s, atol_s, central_rtol, central_atol = _suggested_tolerances(setup, comp, method)
+    # Hints test their patterns against the tool's own allowance, never the caller's rtol.
+    with np.errstate(all="ignore"):
+        own = verdicts.allowed_difference(a, n, est.error, terms=term_sizes(setup, comp.numeric),
+                                          eps_f=setup.eps_f, eps_a=analytic_eps)
+    hints = mismatch_hints(setup.layout, coords[done], setup.base, a[done], n[done],
+                           comp.verdict[done], own[done], comp.kinks.found[done])
+    notes = list(setup.notes) + list(notes) + list(comp.notes)
+    problems = list(setup.problems) + list(problems)
     if analytic_eps is not None and analytic_eps > np.finfo(np.float64).eps:
-        notes.append(f"the analytic gradient holds values of lower precision (eps "
-                     f"{analytic_eps:.3g}): the allowance includes their rounding, so agreement "
-                     "means less than in float64")
+        notes.append(say.lower_precision_gradient(analytic_eps))
     if comp.numeric.undefined:
-        names = [coordinate_name(setup.layout, c) for c in comp.numeric.undefined]
-        notes.append(f"the cost is not finite at some stencil points of "
-                     f"{verdicts.count(len(names), 'coordinate')} ({verdicts.name_list(names)}): those were redone with shorter "
-                     "steps or one-sided differences (see their rows); the others are unaffected")
+        notes.append(say.undefined_stencils([coordinate_name(setup.layout, c)
+                                             for c in comp.numeric.undefined]))
     kinked = [r.name for r in rows if r.verdict == "kink"]
     if kinked:
-        notes.append(f"{verdicts.count(len(kinked), 'coordinate')} on a kink, where the cost has two one-sided "
-                     f"slopes and the analytic value lies between them: "
-                     f"{verdicts.name_list(kinked)}; a kink does not fail the check")
+        notes.append(say.on_kinks(kinked))
     undecided = [r.name for r in rows if r.verdict == "noisy"]
     if undecided:
-        notes.append(f"{verdicts.count(len(undecided), 'coordinate')} could not be decided: the numeric "
-                     f"derivative's error estimate is as large as the values (cost noise about "
-                     f"{setup.line.noise:.2g}): {verdicts.name_list(undecided)}")
+        notes.append(say.undecided(undecided, setup.line.noise))
     if rows and len(undecided) == len(rows) and not allow_undecided:
-        problems.append(f"no coordinate could be decided: all {len(rows)} are undecided "
-                        "(noisy), so nothing was checked; make the cost deterministic and "
-                        "smooth at this point, or pass allow_undecided=True to accept this")
+        problems.append(say.nothing_decided(len(rows)))
     if any(r.failing for r in rows) and not setup.runner.interrupted:
         if probes.descent_uphill(setup.runner, comp.analytic, setup.scale, setup.f0,
                                  setup.line.noise, setup.eps_f):
-            hints.append("descent: a small step against the analytic gradient raises the cost "
-                         "and a step along it lowers it: it points uphill, so gradient descent "
-                         "would climb")
+            hints.append(uphill_hint())
+    extra = {}
+    if probe_unsampled and not setup.runner.interrupted and np.all(np.isfinite(comp.analytic)):
+        probe = remainder_along(setup.runner, setup.base, setup.layout, setup.f0, setup.eps_f,
+                                setup.line.noise, comp.analytic, seed, analytic_eps)
+        extra = {"remainder_order": probe.order, "remainder_passed": probe.passed}
+        outside_note(probe, len(rows), setup.layout.size, any(r.failing for r in rows),
+                     notes, problems)
     return GradientReport(rows=rows, method=method, evaluations=setup.runner.evaluations,
                           total=setup.layout.size, hints=hints, notes=notes,
                           problems=problems, suggested_rtol=rtol_s,
                           suggested_atol=atol_s, interrupted=setup.runner.interrupted,
-                          title=title)
+                          title=title, extra=extra, suggested_central_rtol=central_rtol,
+                          suggested_central_atol=central_atol)
 
 
+@interrupts_as_check_interrupted("noise estimate")
 def estimate_noise(cost, params):
-    """The noise level of the cost's computed values near params (More & Wild, 2011)."""
+    """The noise level of the cost's computed values near params (More & Wild, 2011).
+
+    Parameters
+    ----------
+    cost : callable
+        ``cost(params) -> float``.
+    params : array_like or a nest of those
+        The point; never modified.
+
+    Returns
+    -------
+    NoiseEstimate
+        ``.level`` (absolute, one standard deviation of a value), ``.relative``,
+        ``.order``, the values of the first line and their spacing, ``.evaluations``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> smooth = estimate_noise(lambda x: np.sum(np.sin(x)), np.array([0.3, 1.1]))
+    >>> bool(smooth.relative < 1e-13)
+    True
+    """
     setup = prepare(cost, params, repeat=False)
-    return NoiseEstimate(level=setup.line.noise,
-                         relative=setup.line.noise / abs(setup.f0) if setup.f0 else float("inf"),
+    if setup.runner.interrupted:
+        raise setup.runner.stop_error(None, "noise estimate")
+    relative = float(setup.line.noise / abs(setup.f0)) if setup.f0 else float("inf")
+    return NoiseEstimate(level=setup.line.noise, relative=relative,
                          order=setup.line.order, values=setup.line.values,
                          spacing=setup.line.spacing, evaluations=setup.runner.evaluations)
 
 
 @dataclass
 class NoiseEstimate:
+    """The result of `estimate_noise`: how precise the cost's values are near a point.
+
+    Attributes
+    ----------
+    level, relative, order, values, spacing, evaluations
+        As commented below.
+    """
     level: float          # absolute noise of one cost value (a standard deviation)
     relative: float       # level / |f(params)|
     order: int            # difference order the estimate came from (0: no noise seen)
     values: np.ndarray    # the cost values along the first line
     spacing: float        # the first line's spacing, relative to each coordinate's scale
     evaluations: int
-
-
-class Source:
-    """The cost behind a report, kept so figures can ask for more evaluations later."""
-
-    def __init__(self, setup: Setup, analytic: np.ndarray, h: np.ndarray, method: str):
-        self.setup, self.analytic, self.h, self.method = setup, analytic, h, method
-
-    def step_sweep(self, flat_index: int, steps=None) -> dict:
-        """Central differences of one coordinate over a wide range of steps (2 per step)."""
-        s = float(self.setup.scale[flat_index])
-        steps = s * 2.0 ** -np.arange(1, 46) if steps is None else np.asarray(steps)
-        where, amounts = [], []
-        for h in steps:
-            where += [flat_index, flat_index]
-            amounts += [float(h), -float(h)]
-        run = self.setup.runner.run(where, amounts, label="step sweep")
-        v = run.values.real.reshape(-1, 2)
-        chosen = self.h if self.method != "complex-step" else stencils.default_steps(
-            "central", self.setup.base, self.setup.eps)
-        return {"steps": steps, "derivatives": (v[:, 0] - v[:, 1]) / (2 * steps),
-                "chosen_step": float(chosen[flat_index]),
-                "analytic": float(self.analytic[flat_index])}
-
-    def remainder(self, seed=None):
-        from .remainder import remainder_from_setup
-        return remainder_from_setup(self.setup, self.analytic, seed)

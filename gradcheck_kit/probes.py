@@ -10,12 +10,13 @@ Each returns values; none changes what it was given.
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from . import stencils
 from .evaluate import CostRunner
+from .tree import Layout
 
 # The second and third noise lines are spaced 3/2 and 5/4 of the first (so their points
 # are as exact as the first line's, even in float16), each along its own direction: a
@@ -28,6 +29,10 @@ THIRD_LINE_SPACING = 5 / 4
 SHORTER_LINE = 2.0 ** -10
 # Relative noise is capped here: beyond it no step gives a useful derivative anyway.
 LARGEST_RELATIVE_NOISE = 1e-3
+NOISY_ABOVE = 1e4        # relative noise this many epsilons above rounding counts as noise
+REPEAT_TOLERANCE = 10.0  # two calls at one point may differ by this many eps (threaded sums)
+# Cost values this small next to their variation over a coordinate's scale count as 0.
+NEAR_ZERO = 1e-6
 
 
 @dataclass
@@ -106,6 +111,32 @@ def relative_precision(dtype, noise: float, size: float) -> float:
     return float(min(max(eps, relative), max(eps, LARGEST_RELATIVE_NOISE)))
 
 
+def repeat_differs(first: float, again: float) -> bool:
+    """Two calls at the same point differ by more than a threaded sum's rounding."""
+    return abs(again - first) > REPEAT_TOLERANCE * np.finfo(float).eps * \
+        max(abs(first), abs(again))
+
+
+def precision(lines: Lines, f0: float, output_dtype, leaf_eps: np.ndarray) -> tuple:
+    """(eps_f, noisy, eps): the relative precision of the cost's values, whether they are
+    noisy well beyond rounding, and the per-coordinate eps that steps are sized from.
+
+    Noise counts relative to the size of the cost's values, or of its variation over a
+    coordinate's scale where larger: at a point where the cost is 0 (x |x| at 0), a tiny
+    absolute level would otherwise pass for large relative noise.  Steps grow only for
+    costs noisy well beyond rounding (More & Wild, ACM TOMS 38(3), 2012); rounding-level
+    noise enlarged by cancellation only enters the error estimates.
+    """
+    line = lines.features
+    dtype_eps = float(np.finfo(output_dtype).eps)
+    size = float(np.max(np.abs(line.values), initial=abs(f0)))
+    if size <= NEAR_ZERO * max(line.curvature_s2, line.slope):
+        size = max(line.curvature_s2, line.slope)
+    eps_f = relative_precision(output_dtype, line.noise, size)
+    noisy = eps_f > NOISY_ABOVE * dtype_eps
+    return eps_f, noisy, np.maximum(leaf_eps, eps_f if noisy else dtype_eps)
+
+
 def complex_safety(runner: CostRunner, base, scale, f0, eps_f, eps, noise, seed) -> tuple:
     """Is the cost complex-safe?  (safe, reason), from two complex and four real
     evaluations along one random direction (see stencils.complex_probe_agrees).
@@ -164,3 +195,24 @@ def flat_but_sloped(lines: Lines, analytic, f0) -> bool:
     reach = (stencils.NOISE_POINTS // 2) * lines.features.spacing
     predicted = abs(float(analytic @ lines.direction)) * reach
     return predicted > 1e3 * np.finfo(float).eps * max(abs(f0), 1e-300)
+
+
+@dataclass
+class Setup:
+    """What every check needs after the cost has run at the base point and its noise lines.
+
+    Built once by the pipeline's `prepare`; later stages read it and never change it
+    (except the runner, which counts evaluations and remembers an interrupt).
+    """
+    runner: CostRunner
+    base: np.ndarray
+    layout: Layout
+    f0: float
+    eps_f: float                 # relative precision of the cost's values
+    eps: np.ndarray              # per coordinate: max(leaf dtype eps, eps_f), for steps
+    scale: np.ndarray
+    line: stencils.LineFeatures
+    noisy: bool                  # noise well above rounding: steps were enlarged for it
+    notes: list = field(default_factory=list)
+    problems: list = field(default_factory=list)
+    lines: Lines = None

@@ -17,29 +17,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-METHODS = ("forward", "backward", "central", "five-point", "richardson", "complex-step")
-
-# Offsets, in units of the step h, at which each method evaluates the cost.
-OFFSETS = {
-    "forward": (1.0,),
-    "backward": (-1.0,),
-    "central": (1.0, -1.0),
-    "five-point": (1.0, -1.0, 2.0, -2.0),
-    "richardson": (1.0, -1.0, 0.5, -0.5),   # central differences at h and h/2, extrapolated
-    "complex-step": (1j,),
-}
+from .plan import (COMPLEX_STEP, METHODS, OFFSETS, STEP_POWER,  # noqa: F401 - the method table
+                   default_steps, power_of_two, scale_of)
 
 # Order p of each stencil's truncation error, O(h^p).
 ORDER = {"forward": 1, "backward": 1, "central": 2, "five-point": 4, "richardson": 4,
          "complex-step": 2}
-
-# Exponent of eps in the step: 1/(p+1) for truncation order p.
-STEP_POWER = {"forward": 1 / 2, "backward": 1 / 2, "central": 1 / 3,
-              "five-point": 1 / 5, "richardson": 1 / 5}
-
-# The complex step has no subtractive cancellation, so h can be tiny; 1e-20 makes the
-# O(h^2) truncation vanish (Squire & Trapp, SIAM Review 40(1), 1998).
-COMPLEX_STEP = 1e-20
 
 
 @dataclass
@@ -67,45 +50,41 @@ class Estimates:
             getattr(self, f)[idx] = getattr(other, f)
 
 
-def scale_of(x: np.ndarray) -> np.ndarray:
-    """The size that a coordinate's step is relative to: max(|x_i|, 1).
+@dataclass(frozen=True)
+class Near:
+    """What is known about the cost near the point; every stencil's error model reads it.
 
-    A non-finite entry (a NaN the cost may never read) gets 1, so that it cannot
-    spread into the steps and estimates of every other coordinate.
+    f0: the cost at the point.  eps_f: the relative accuracy of its values (machine
+    epsilon of its dtype, or its measured noise over |f0|, whichever is larger).
+    noise: the measured absolute noise of one value (see noise_from_values).
+    curvature, third: a typical |f2| and |f3| (scalars or per coordinate), for stencils
+    that see none themselves.
     """
-    with np.errstate(invalid="ignore"):
-        return np.where(np.isfinite(x), np.maximum(np.abs(x), 1.0), 1.0)
+    f0: float
+    eps_f: float
+    noise: float = 0.0
+    curvature: object = 0.0
+    third: object = 0.0
 
 
-def default_steps(method: str, x: np.ndarray, eps: np.ndarray) -> np.ndarray:
-    """Automatic steps: eps^(1/(p+1)) * max(|x_i|, 1), rounded down to a power of two."""
-    if method == "complex-step":
-        return COMPLEX_STEP * scale_of(x)
-    return power_of_two(eps ** STEP_POWER[method] * scale_of(x))
+def value_noise(values: np.ndarray, near: Near) -> np.ndarray:
+    """Per row of values: a bound on the noise of one value, the larger of its rounding
+    (eps_f times the largest value) and the measured level.  The measured level is a
+    standard deviation; a bound that holds for nearly every value is a few of them."""
+    fmax = np.max(np.abs(values.real), axis=1, initial=abs(near.f0)) if values.size \
+        else np.zeros(len(values))
+    return np.maximum(near.eps_f * fmax, NOISE_BOUND * near.noise)
 
 
-def power_of_two(h):
-    """Largest power of two not above h (positive h)."""
-    return np.exp2(np.floor(np.log2(h)))
-
-
-def combine(method: str, values: np.ndarray, f0: float, h: np.ndarray, eps_f,
-            scale: np.ndarray, noise_level: float = 0.0, curvature_hint=0.0,
-            third_hint=0.0) -> Estimates:
-    """Derivative estimates from `values` of shape (n, len(OFFSETS[method])).
-
-    eps_f is the relative accuracy of the cost's values (machine epsilon of its
-    dtype, or its measured noise over |f0|, whichever is larger); noise_level the
-    measured absolute noise of one value (see noise_from_values); curvature_hint
-    and third_hint a typical |f2| and |f3| for stencils that see none.  Below, f1, f2,
-    f3, f5 name the first, second, third and fifth derivatives.
-    """
+def combine(method: str, values: np.ndarray, h: np.ndarray, scale: np.ndarray,
+            near: Near) -> Estimates:
+    """Derivative estimates from `values` of shape (n, len(OFFSETS[method])), taken at
+    steps h (one per row) from a point whose cost is described by `near`.  Below, f1, f2,
+    f3, f5 name the first, second, third and fifth derivatives."""
     f = values
-    fmax = np.max(np.abs(f.real), axis=1, initial=abs(f0)) if f.size else np.zeros(0)
-    # The measured level is a standard deviation; a bound that holds for nearly every
-    # value is about three of them.
-    noise = np.maximum(eps_f * fmax, NOISE_BOUND * noise_level)
-    est = _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint)
+    f0, eps_f, curvature_hint = near.f0, near.eps_f, near.curvature
+    noise = value_noise(f, near)
+    est = _estimate(method, f, h, scale, noise, near)
     if est.gap is None:
         est.gap = np.zeros(len(h))
     # Rounding in the terms a derivative is made of: where the cost is near 0 (a zero
@@ -119,6 +98,14 @@ def combine(method: str, values: np.ndarray, f0: float, h: np.ndarray, eps_f,
 
 
 NOISE_BOUND = 2.0
+# Safety factors over the textbook truncation terms whose derivative (|f2| for one-sided,
+# |f3| for central differences) comes from a model rather than from the stencil's own
+# values: measured on the calibration corpus (tests/calibration.py, 4062 coordinates), the
+# largest |error| / estimate was 1.99 for one-sided differences at 4 h |f2| / 2 (the
+# Rosenbrock minimiser, where a random line's curvature is 1/8 of the coordinate's) and
+# 1.83 for central differences at h^2 |f3| / 6 (a tanh network); twice that is kept.
+ONE_SIDED_SAFETY = 8.0
+CENTRAL_SAFETY = 2.0
 # The fourth-order stencils are used at steps short enough (after refinement) that
 # rounding decides their error; a cost summed from many terms (sum(exp(30 x)) over 1000
 # entries) rounds each value several times eps * |f|, which the bound of one eps * |f|
@@ -127,11 +114,12 @@ SUM_ROUNDING = 1.0
 TERM_ROUNDING = 8.0
 
 
-def _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint) -> Estimates:
-    est = _estimate_by_method(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint)
+def _estimate(method, f, h, scale, noise, near: Near) -> Estimates:
+    est = _estimate_by_method(method, f, h, scale, noise, near)
+    f0 = near.f0
     if method in ("central", "five-point", "richardson"):
         # An odd cost (x |x| at 0) cancels the symmetric second difference to zero, so
-        # the curvature kept for the term scale (verdicts.term_scale) would vanish; where
+        # the curvature kept for the term scale (term_scale) would vanish; where
         # it is that small, the larger one-sided curvature 2 |f(x +- h) - f(x) -+ h d| / h^2
         # (|f2| for a smooth cost) stands in.
         d = est.derivative
@@ -142,8 +130,8 @@ def _estimate(method, f, f0, h, eps_f, scale, noise, curvature_hint, third_hint)
     return est
 
 
-def _estimate_by_method(method, f, f0, h, eps_f, scale, noise, curvature_hint,
-                        third_hint) -> Estimates:
+def _estimate_by_method(method, f, h, scale, noise, near: Near) -> Estimates:
+    f0, eps_f, curvature_hint, third_hint = near.f0, near.eps_f, near.curvature, near.third
     zero = np.zeros(len(h))
     if method == "complex-step":
         d = f[:, 0].imag / h
@@ -156,9 +144,9 @@ def _estimate_by_method(method, f, f0, h, eps_f, scale, noise, curvature_hint,
         d = sign * (f[:, 0] - f0) / h
         # Truncation h |f2| / 2 with the model |f2| ~ max(|f1| / scale, typical |f2|).
         # The model is rough (a typical |f2| may be far below this coordinate's), so the
-        # bound is four times the textbook h |f2| / 2.
+        # bound is ONE_SIDED_SAFETY times the textbook h |f2| / 2.
         f2 = np.maximum(np.abs(d) / scale, curvature_hint)
-        return Estimates(d, 2 * h * f2, 2 * noise / h, zero)
+        return Estimates(d, ONE_SIDED_SAFETY * h * f2 / 2, 2 * noise / h, zero)
     central = (f[:, 0] - f[:, 1]) / (2 * h)
     second = np.abs(f[:, 0] - 2 * f0 + f[:, 1]) / h ** 2
     if method == "central":
@@ -168,7 +156,7 @@ def _estimate_by_method(method, f, f0, h, eps_f, scale, noise, curvature_hint,
         # 2 |f2| / L: exact for a logarithm (-log x: f3 = 2 f2^2 / f1), twice an exponential.
         length = np.clip(np.abs(central) / np.maximum(second, 1e-300), h, scale)
         f3 = np.maximum(2 * second / length + np.abs(central) / scale ** 2, third_hint)
-        trunc = h ** 2 / 6 * f3
+        trunc = CENTRAL_SAFETY * h ** 2 / 6 * f3
         return Estimates(central, trunc, noise / h, second)
     if method == "five-point":
         d = (8 * (f[:, 0] - f[:, 1]) - (f[:, 2] - f[:, 3])) / (12 * h)
@@ -191,29 +179,56 @@ REFINABLE = ("five-point", "richardson")   # methods with an embedded lower-orde
 VALUE_ROUNDING = {"five-point": 1.5, "richardson": 3.0}
 
 
-def refined_steps(est: Estimates, h: np.ndarray) -> np.ndarray:
+def refined_steps(est: Estimates, h: np.ndarray, method: str) -> np.ndarray:
     """Shorter steps for coordinates whose lower-order gap dominates their rounding.
 
-    With the gap G ~ |f3| h^2 and rounding U ~ eps |f| / h, the step that balances
-    them is h (U / G)^(1/3); never below h / 1024.
+    Where the fourth-order error model holds (its error T below the gap G, see
+    extrapolation_error), the step that minimises T (h'/h)^4 + U h/h' with rounding U:
+    h (U / 4T)^(1/5).  Elsewhere the step was too long for the expansion to hold, and
+    the step that balances the gap G ~ |f3| h^2 against U is taken: h (U / G)^(1/3).
+    Never below h / 1024.
     """
-    ratio = np.cbrt(est.rounding / np.maximum(est.gap, 1e-300))
-    return power_of_two(h * np.clip(ratio, 1 / 1024, 1.0))
+    t4 = extrapolation_error(est, h, method) - est.rounding
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fifth = (est.rounding / (4 * t4)) ** 0.2
+        third = np.cbrt(est.rounding / np.maximum(est.gap, 1e-300))
+    ratio = np.where((t4 < est.gap) & (t4 > 0), fifth, third)
+    return power_of_two(h * np.clip(np.nan_to_num(ratio, nan=1.0), 1 / 1024, 1.0))
 
 
-def extrapolation_error(est: Estimates, terms: np.ndarray) -> np.ndarray:
-    """Modelled error of a fourth-order value: about 8 G^2 / |f1| plus rounding.
+# The fourth-order values' h^4 error from their gap G to the embedded second-order
+# value (G ~ h^2 |f3| / 6 for five-point, h^2 |f3| / 24 for Richardson's C(h/2)), under
+# the model that the cost varies on one length along the coordinate, f_k ~ A / L^k:
+# |f5| ~ |f3|^2 / |f1| (exact for exponentials and sines) or, where f1 is near 0,
+# |f5| ~ |f3|^3 / |f2|^2.  Five-point's error is h^4 |f5| / 30, Richardson's h^4 |f5| / 480:
+# both give 1.2 G^2 / |f1|, and 7.2 resp. 28.8 G^3 / (h^2 |f2|^2).  EXTRAPOLATION_SAFETY
+# over these: the model is rough (a sum of terms of several lengths).
+EXTRAPOLATION_SAFETY = 8.0
+FIFTH_FROM_CURVATURE = {"five-point": 7.2, "richardson": 28.8}
 
-    With the gap G ~ h^2 |f3| and the model |f5| ~ |f3|^2 / |f1|, the h^4 term is of
-    order G^2 / |f1|; `terms` stands in for |f1| near zero.
-    """
-    size = np.maximum(np.abs(est.derivative), terms)
-    return 8 * est.gap ** 2 / np.maximum(size, 1e-300) + est.rounding
+
+def extrapolation_error(est: Estimates, h: np.ndarray, method: str) -> np.ndarray:
+    """Modelled error of a fourth-order value (see above), never above its gap, plus rounding."""
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        by_slope = 1.2 * est.gap ** 2 / np.abs(est.derivative)
+        by_curvature = FIFTH_FROM_CURVATURE[method] * est.gap ** 3 / (h * est.curvature) ** 2
+        modelled = EXTRAPOLATION_SAFETY * np.fmin(by_slope, by_curvature)
+    modelled = np.where(np.isfinite(modelled), np.minimum(modelled, est.gap), est.gap)
+    return modelled + est.rounding
 
 
-def pick_refined(first: Estimates, second: Estimates, terms: np.ndarray) -> np.ndarray:
+def pick_refined(first: Estimates, h_first, second: Estimates, h_second,
+                 method: str) -> np.ndarray:
     """For each refined coordinate: is the second value's modelled error the smaller?"""
-    return extrapolation_error(second, terms) < extrapolation_error(first, terms)
+    return extrapolation_error(second, h_second, method) < \
+        extrapolation_error(first, h_first, method)
+
+
+def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
+    """Size of the terms each gradient entry is summed from (see verdicts' module text):
+    the largest numeric entry, |f0| / scale, and |f2| * scale, per coordinate."""
+    largest = float(np.max(np.abs(numeric[np.isfinite(numeric)]), initial=0.0))
+    return np.maximum(np.maximum(largest, abs(f0) / scale), curvature_times_scale)
 
 
 def complex_probe_agrees(complex_values, real_values, f0: float, hc: float, t: float,
@@ -383,21 +398,57 @@ def _difference_table_noise(f) -> tuple:
     noise's do not).  Returns (0.0, 0) when every difference vanishes.  The values
     are divided by their largest size first, so that squaring cannot overflow (values
     near 1e252) or underflow (near 1e-252).
+
+    Plain Python on the few values of a noise line: numpy's per-call overhead made
+    this a quarter of a small check.  Every operation is the one numpy did, in its
+    order (see _numpy_sum), so the results are bitwise those of the array version.
     """
-    size = float(np.max(np.abs(f), initial=0.0))
-    if not (np.isfinite(size) and size > 0):
+    values = [float(v) for v in np.asarray(f, dtype=float).reshape(-1)]
+    if not values or not all(math.isfinite(v) for v in values):
         return 0.0, 0
-    level, order = _difference_table_levels(np.asarray(f, dtype=float) / size)
+    size = max(abs(v) for v in values)
+    if not size > 0:
+        return 0.0, 0
+    level, order = _difference_table_levels([v / size for v in values])
     return level * size, order
 
 
+# gamma_k = (k!)^2 / (2k)! of the difference table, for the orders a line can have.
+_GAMMA = [math.factorial(k) ** 2 / math.factorial(2 * k) for k in range(64)]
+
+
+def _numpy_sum(a: list) -> float:
+    """The float sum numpy's add.reduce gives for a contiguous float64 array: a plain
+    loop below 8 values, eight running sums combined pairwise up to 128, halves
+    summed recursively above (numpy's pairwise summation)."""
+    n = len(a)
+    if n < 8:
+        total = 0.0
+        for x in a:
+            total += x
+        return total
+    if n <= 128:
+        r = a[:8]
+        for i in range(8, n - n % 8, 8):
+            for j in range(8):
+                r[j] += a[i + j]
+        total = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]))
+        for i in range(n - n % 8, n):
+            total += a[i]
+        return total
+    half = n // 2
+    half -= half % 8
+    return _numpy_sum(a[:half]) + _numpy_sum(a[half:])
+
+
 def _difference_table_levels(f) -> tuple:
-    diffs, sigmas = f, []
-    for k in range(1, len(f) - 1):
-        diffs = np.diff(diffs)
-        gamma = math.factorial(k) ** 2 / math.factorial(2 * k)
-        sigmas.append((k, math.sqrt(gamma * float(np.mean(diffs ** 2))),
-                       bool(np.any(diffs > 0) and np.any(diffs < 0))))
+    diffs, sigmas = list(f), []
+    for k in range(1, len(diffs) - 1):
+        diffs = [b - a for a, b in zip(diffs, diffs[1:])]
+        gamma = _GAMMA[k] if k < len(_GAMMA) else math.factorial(k) ** 2 / math.factorial(2 * k)
+        mean = _numpy_sum([d * d for d in diffs]) / len(diffs)
+        sigmas.append((k, math.sqrt(gamma * mean),
+                       any(d > 0 for d in diffs) and any(d < 0 for d in diffs)))
     if all(s == 0 for _, s, _ in sigmas):
         return 0.0, 0
     for (k, s, changes), (_, s1, _), (_, s2, _) in zip(sigmas, sigmas[1:], sigmas[2:]):

@@ -31,12 +31,6 @@ ANALYTIC_ROUNDING_CAP = 1e-3
 ANALYTIC_VALUE_ROUNDING = 16.0
 
 
-def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
-    """Size of the terms each gradient entry is made of (see module text)."""
-    largest = float(np.max(np.abs(numeric[np.isfinite(numeric)]), initial=0.0))
-    return np.maximum(np.maximum(largest, abs(f0) / scale), curvature_times_scale)
-
-
 def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None,
                        eps_a=None):
     """How far apart analytic and numeric may be, per coordinate (see module text).
@@ -145,11 +139,7 @@ def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -
     return verdict
 
 
-# --- hints: patterns across mismatches ---------------------------------------------------
-def _close(x, y, tol):
-    return np.abs(x - y) <= tol + 1e-6 * np.maximum(np.abs(x), np.abs(y))
-
-
+# --- wording shared by the notes and the hints (gradcheck_kit/hints.py) ---------------
 def count(n: int, noun: str) -> str:
     """'1 coordinate', '3 coordinates'."""
     return f"{n} {noun}" + ("" if n == 1 else "s")
@@ -160,92 +150,3 @@ def name_list(names, limit=4) -> str:
     names = list(names)
     shown = ", ".join(names[:limit])
     return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
-
-
-
-def _describe_factor(c: float) -> str:
-    """Words for a constant ratio analytic / numeric: 2, 1/2, or k and 1/k for an integer k."""
-    k = round(c)
-    if k >= 2 and abs(c - k) <= 1e-6 * k:
-        extra = "" if k == 2 else (f": a sum over {k} items where the cost takes their mean "
-                                    "(mean versus sum)?")
-        return f"{k} times the numeric one{extra}"
-    k = round(1 / c)
-    if k >= 2 and abs(1 / c - k) <= 1e-6 * k:
-        extra = "" if k == 2 else (f": a mean over {k} items where the cost sums them "
-                                    "(mean versus sum)?")
-        return f"1/{k} of the numeric one{extra}"
-    return f"{c:.6g} times the numeric one: a constant factor is off"
-
-
-def hints(layout, coords, analytic, numeric, verdict, allowed) -> list:
-    """Sentences naming the pattern of the mismatches: sign, factor, transposition, ..."""
-    from .tree import coordinate_name, leaf_of_each
-
-    bad = verdict == "disagree"
-    if not bad.any():
-        return []
-    a, n, tol = analytic[bad], numeric[bad], allowed[bad]
-    names = [coordinate_name(layout, int(c)) for c in coords[bad]]
-    out = []
-    solid = np.abs(n) > tol
-    if solid.any() and np.mean(_close(a[solid], -n[solid], tol[solid])) >= 0.8:
-        out.append(f"sign: the analytic value is the negative of the numeric one at "
-                   f"{name_list([m for m, s in zip(names, solid) if s])}: a sign error")
-    elif solid.sum() >= 1 and np.all(np.abs(a[solid]) > tol[solid]):
-        ratio = a[solid] / n[solid]
-        c = float(np.median(ratio))
-        if c > 0 and not np.isclose(c, 1.0, rtol=1e-3) and \
-                np.all(np.abs(ratio - c) <= 1e-3 * abs(c)):
-            out.append(f"factor: at {name_list([m for m, s in zip(names, solid) if s])} the "
-                       f"analytic value is {_describe_factor(c)}")
-    zero = (np.abs(a) <= tol) & solid
-    if zero.any():
-        out.append(f"missing term: the analytic gradient is zero at "
-                   f"{name_list([m for m, z in zip(names, zero) if z])}, where the cost does change")
-    out += _layout_hints(layout, coords, analytic, numeric, verdict, allowed)
-    leaf_no = leaf_of_each(layout)[coords]
-    bad_leaves = set(leaf_no[bad])
-    if len(bad_leaves) == 1 and len(layout.leaves) > 1:
-        only = layout.leaves[bad_leaves.pop()].name
-        others_agree = np.any((leaf_no != leaf_no[bad][0]) & (verdict == "agree"))
-        if others_agree:
-            out.append(f"single parameter: only '{only}' disagrees while the other parameters "
-                       f"agree: look at the part of the gradient that computes '{only}'")
-    return out
-
-
-def _layout_hints(layout, coords, analytic, numeric, verdict, allowed) -> list:
-    """Transposed matrices and swapped or shifted entries, within one fully checked leaf."""
-    from .tree import coordinate_name
-
-    out = []
-    where = {int(c): j for j, c in enumerate(coords)}
-    for leaf in layout.leaves:
-        span = range(leaf.offset, leaf.offset + leaf.size)
-        if leaf.size < 2 or not all(i in where for i in span):
-            continue
-        js = np.array([where[i] for i in span])
-        if not np.any(verdict[js] == "disagree"):
-            continue
-        A, N, T = analytic[js], numeric[js], allowed[js]
-        if len(leaf.shape) == 2 and leaf.shape[0] == leaf.shape[1]:
-            Nt = N.reshape(leaf.shape).T.ravel()
-            if np.all(_close(A, Nt, T)):
-                out.append(f"transposed: the analytic gradient of '{leaf.name}' equals the "
-                           "transpose of the numeric one")
-                continue
-        bad = np.flatnonzero(verdict[js] == "disagree")
-        for k in (1, -1):
-            if np.all(_close(A[bad], np.roll(N, k)[bad], T[bad])):
-                out.append(f"shifted: the analytic entries of '{leaf.name}' equal the numeric "
-                           f"ones moved by {k:+d} position (an off-by-one index)")
-                break
-        else:
-            if bad.size == 2:
-                p, q = bad
-                if _close(A[p], N[q], T[p]) and _close(A[q], N[p], T[q]):
-                    out.append(f"swapped: the analytic values of "
-                               f"{coordinate_name(layout, leaf.offset + int(p))} and "
-                               f"{coordinate_name(layout, leaf.offset + int(q))} are exchanged")
-    return out

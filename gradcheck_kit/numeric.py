@@ -1,0 +1,253 @@
+"""Numeric derivatives at chosen coordinates, with retries where a stencil misleads.
+
+Between probes and verdicts: one pass of a stencil per coordinate (plan's
+requests, evaluate's runner, stencils' numerics), then, only for the coordinates
+that need it, points where the cost is not finite are redone with shorter steps
+and finally one-sided differences, and fourth-order methods whose embedded
+lower-order value says the step was too long are redone once with a balanced step.
+Each function returns new results; what it was given is left as it was.
+"""
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import plan, stencils
+from .evaluate import describe_failure
+from .probes import Setup
+
+# Five-point and Richardson redo a coordinate with a shorter step when the gap to their
+# embedded lower-order value is above this fraction of the gradient's term size (see
+# stencils.term_scale) and dominates rounding: the automatic step max(|x|, 1) * eps^(1/5)
+# was too long for the coordinate's curvature (e.g. x4, x5 of Osborne 1 in More, Garbow
+# & Hillstrom, whose cost varies on a scale of 1/300 in them).
+REFINE_ABOVE = 1e-7
+# A stencil that meets a non-finite value (a log or sqrt stepped across 0) is redone with
+# its step cut by SHORTEN_BY, up to SHORTEN_TIMES times (2^-18 of the step at most), then
+# one-sided on the side where the cost is defined.
+SHORTEN_BY = 8.0
+SHORTEN_TIMES = 6
+
+
+@dataclass
+class Numeric:
+    """Numeric derivatives at some coordinates, with what they were computed from."""
+    coords: np.ndarray
+    h: np.ndarray                # step of each coordinate (the pass its value came from)
+    values: np.ndarray           # (coordinates, offsets) cost values of that pass
+    estimates: stencils.Estimates
+    failed: np.ndarray           # a stencil point raised for this coordinate
+    details: list                # text per coordinate ("" when fine)
+    done: np.ndarray             # finished before an interrupt
+    method: str
+    undefined: list = field(default_factory=list)   # coordinates that met non-finite values
+
+    def copy(self) -> "Numeric":
+        """An independent copy, for a stage that changes some of its coordinates."""
+        return Numeric(self.coords.copy(), self.h.copy(), self.values.copy(),
+                       self.estimates.take(np.arange(len(self.coords))), self.failed.copy(),
+                       list(self.details), self.done.copy(), self.method,
+                       list(self.undefined))
+
+
+def numeric_derivatives(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray,
+                        refine: bool = True) -> Numeric:
+    """Numeric derivatives at `coords`; non-finite stencil points are redone with shorter
+    or one-sided steps, and fourth-order methods refine badly scaled coordinates once."""
+    numeric = one_pass(setup, method, coords, h[coords])
+    if setup.runner.interrupted:
+        return numeric
+    numeric = redo_undefined(setup, numeric)
+    if method in stencils.REFINABLE and refine and not setup.runner.interrupted:
+        numeric = refine_steps(setup, numeric)
+    return numeric
+
+
+def refine_steps(setup: Setup, numeric: Numeric) -> Numeric:
+    """Fourth-order values whose gap to their embedded second-order value is large next
+    to rounding: one more pass at a step that balances the two, and of the two values
+    the one with the smaller modelled error (stencils.extrapolation_error)."""
+    est = numeric.estimates
+    terms = term_sizes(setup, numeric)
+    finite = np.isfinite(numeric.values.real).all(axis=1)
+    # The step balance uses the plain rounding bound of the stencil's values, not the
+    # margins the error estimate adds (stencils.SUM_ROUNDING and the terms' rounding).
+    rounding = stencils.VALUE_ROUNDING[numeric.method] * est.noise / numeric.h
+    redo = (est.gap > REFINE_ABOVE * terms) & (est.gap > 64 * rounding) & \
+        ~numeric.failed & finite
+    if not redo.any():
+        return numeric
+    idx = np.flatnonzero(redo)
+    h1 = numeric.h[idx]
+    balance = est.take(idx)
+    balance.rounding = rounding[idx]
+    h2 = stencils.refined_steps(balance, h1, numeric.method)
+    second = one_pass(setup, numeric.method, numeric.coords[idx], h2)
+    ok = ~second.failed & second.done & np.isfinite(second.values.real).all(axis=1)
+    plain = second.estimates.take(np.arange(idx.size))
+    plain.rounding = stencils.VALUE_ROUNDING[numeric.method] * plain.noise / h2
+    use = stencils.pick_refined(balance, h1, plain, h2, numeric.method) & ok
+    keep = ~use & ok
+    first, other = est.take(idx), second.estimates
+    distance = np.abs(first.derivative - other.derivative)
+    out = numeric.copy()
+    # Kept first value: the triangle bound, its distance to the second plus the second's
+    # own error, where that is below its gap (the conservative bound it had).
+    truncation = first.truncation.copy()
+    truncation[keep] = np.minimum(first.gap, distance + other.error)[keep]
+    out.estimates.truncation[idx] = truncation
+    # Chosen second value: the distance between the two, or its own modelled error.
+    modelled = stencils.extrapolation_error(other, h2, numeric.method) - other.rounding
+    other.truncation = np.maximum(distance, modelled)
+    pos = np.flatnonzero(use)
+    out.estimates.put(idx[pos], other.take(pos))
+    out.h[idx[pos]] = h2[pos]
+    out.values[idx[pos]] = second.values[pos]
+    return out
+
+
+def redo_undefined(setup: Setup, numeric: Numeric) -> Numeric:
+    """Coordinates whose stencil met a non-finite value: shorter steps, then one side.
+
+    Only these coordinates are redone; the others keep their values untouched.
+    """
+    if numeric.method == "complex-step":
+        return numeric
+    bad = np.flatnonzero(~np.isfinite(numeric.values).all(axis=1) & ~numeric.failed &
+                         numeric.done)
+    if bad.size == 0:
+        return numeric
+    numeric = numeric.copy()   # the coordinates redone below are changed in this copy
+    first_values = numeric.values[bad].copy()
+    h = numeric.h[bad].copy()
+    todo = np.ones(bad.size, dtype=bool)
+    for _ in range(SHORTEN_TIMES):
+        if not todo.any() or setup.runner.interrupted:
+            break
+        h[todo] /= SHORTEN_BY
+        k = np.flatnonzero(todo)
+        again = one_pass(setup, numeric.method, numeric.coords[bad[k]], h[k])
+        fine = np.isfinite(again.values).all(axis=1) & ~again.failed & again.done
+        _adopt(numeric, bad[k[fine]], again, np.flatnonzero(fine))
+        # The first finite step may still reach close to where the cost is undefined (its
+        # derivatives grow fast there): one step shorter again is used, trusted to within
+        # the distance between the two values scaled by the stencil's order.
+        k_fine = k[fine]
+        if k_fine.size:
+            inner = one_pass(setup, numeric.method, numeric.coords[bad[k_fine]],
+                              h[k_fine] / SHORTEN_BY)
+            ok = np.isfinite(inner.values).all(axis=1) & ~inner.failed & inner.done
+            shrink = SHORTEN_BY ** stencils.ORDER[numeric.method] - 1
+            distance = np.abs(inner.estimates.derivative -
+                              numeric.estimates.derivative[bad[k_fine]])
+            inner.estimates.truncation = np.maximum(inner.estimates.truncation,
+                                                    2 * distance / shrink)
+            _adopt(numeric, bad[k_fine[ok]], inner, np.flatnonzero(ok))
+            h[k_fine[ok]] /= SHORTEN_BY
+        for j, i in zip(bad[k[fine]], k[fine]):
+            where = _offsets_text(numeric, first_values[i], j)
+            numeric.details[j] = f"the cost is not finite at {where}: step shortened to {h[i]:.3g}"
+        todo[k[fine]] = False
+    rest = bad[todo]
+    if rest.size and not setup.runner.interrupted:
+        _one_sided(setup, numeric, rest, first_values[todo])
+    numeric.undefined = [int(numeric.coords[j]) for j in bad]
+    return numeric
+
+
+def _offsets_text(numeric: Numeric, values, j) -> str:
+    offsets = np.array(stencils.OFFSETS[numeric.method]) * numeric.h[j]
+    where = [f"{o:+.3g}" for o, v in zip(offsets, values) if not np.isfinite(v)]
+    return "x" + ", x".join(where)
+
+
+def _adopt(numeric: Numeric, positions, other: Numeric, from_positions) -> None:
+    """Take `other`'s results at from_positions into numeric at positions."""
+    if len(positions) == 0:
+        return
+    numeric.estimates.put(positions, other.estimates.take(from_positions))
+    numeric.h[positions] = other.h[from_positions]
+    numeric.values[positions] = other.values[from_positions]
+
+
+def _one_sided(setup: Setup, numeric: Numeric, positions, first_values) -> None:
+    """One-sided differences at steps h and h/2 on the side where the cost was finite,
+    extrapolated: 2 D(h/2) - D(h), trusted to twice |D(h/2) - D(h)| plus rounding (near
+    a pole the neglected terms are of the same size: gammaln and psi near 0)."""
+    offsets = np.array(stencils.OFFSETS[numeric.method])
+    h = numeric.h[positions]
+    sides = []
+    for values in first_values:
+        finite_plus = np.isfinite(values[offsets > 0]).all()
+        finite_minus = np.isfinite(values[offsets < 0]).all()
+        sides.append(1.0 if finite_plus or not finite_minus else -1.0)
+    sides = np.array(sides)
+    coords = numeric.coords[positions]
+    where = np.repeat(coords, 2).tolist()
+    amounts = (np.stack([sides * h, sides * h / 2], axis=1)).ravel().tolist()
+    run = setup.runner.run(where, amounts, label="one-sided differences")
+    v = run.values.real.reshape(-1, 2)
+    far = sides * (v[:, 0] - setup.f0) / h
+    near = sides * (v[:, 1] - setup.f0) / (h / 2)
+    d = 2 * near - far
+    noise = stencils.value_noise(v, stencils.Near(setup.f0, setup.eps_f, setup.line.noise))
+    for k, j in enumerate(positions):
+        side = "forward" if sides[k] > 0 else "backward"
+        ok = np.isfinite(v[k]).all() and not any(2 * k + r in run.failures for r in (0, 1))
+        est = numeric.estimates
+        if ok:
+            est.derivative[j], est.truncation[j] = d[k], 2 * abs(near[k] - far[k])
+            est.rounding[j], est.gap[j], est.curvature[j] = 10 * noise[k] / h[k], 0.0, 0.0
+            numeric.details[j] = (f"the cost is not finite at "
+                                  f"{_offsets_text(numeric, first_values[k], j)}: {side} "
+                                  "differences used")
+        else:
+            est.derivative[j] = np.nan
+            numeric.details[j] = (f"the cost is not finite near here (at "
+                                  f"{_offsets_text(numeric, first_values[k], j)}, and on both "
+                                  "sides at every shorter step tried)")
+
+
+def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Numeric:
+    """One stencil per coordinate; h is aligned with coords."""
+    full = np.zeros(setup.base.size)
+    full[coords] = h
+    where, amounts = plan.requests(method, coords, full)
+    with warnings.catch_warnings():
+        if method == "complex-step":  # a cast that drops the imaginary part is an error here
+            warnings.simplefilter("error", np.exceptions.ComplexWarning)
+        results = setup.runner.run(where, amounts, label=f"{method} differences")
+    k = len(stencils.OFFSETS[method])
+    values = results.values.reshape(len(coords), k)
+    failed = np.zeros(len(coords), dtype=bool)
+    details = [""] * len(coords)
+    for number, exc in sorted(results.failures.items()):
+        c = number // k
+        if not failed[c]:
+            details[c] = describe_failure(exc)
+        failed[c] = True
+    done = ~np.isnan(values).any(axis=1) | failed
+    if not results.interrupted:
+        done[:] = True
+    s = setup.scale[coords]
+    with np.errstate(all="ignore"):
+        near = stencils.Near(setup.f0, setup.eps_f, setup.line.noise,
+                             setup.line.curvature_s2 / s ** 2, 8 * setup.line.third / s ** 3)
+        est = stencils.combine(method, values, h, s, near)
+    return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
+
+
+def term_sizes(setup: Setup, numeric: Numeric, third: bool = False) -> np.ndarray:
+    """Per coordinate, the size of the terms a gradient entry is summed from (see verdicts).
+
+    third: count the cost's third derivative along the noise line too, where slope and
+    curvature both vanish at the point (x^3 at 0): the size a value is negligible next
+    to.  Not for step refinement, which a pole nearby (its large third derivative) would
+    switch off."""
+    est = numeric.estimates
+    s = setup.scale[numeric.coords]
+    slope = max(setup.line.slope, setup.line.third) if third else setup.line.slope
+    seen = np.maximum(est.curvature * s + setup.line.curvature_s2 / s, slope / s)
+    return stencils.term_scale(est.derivative, setup.f0, s, seen)
