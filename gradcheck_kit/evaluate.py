@@ -29,75 +29,14 @@ from .plan import check_executor
 from .tree import Layout, flatten, rebuild, rebuilder
 
 # Memory of one batch of a vectorized cost.  Far inside the 256 MB a batch may take:
-# measured on a 2-core machine (tests/benchmarks.py), batches that stay in the CPU's
-# cache ran the same costs 1.0-2x faster than 256 MB ones, and 256 KiB - 1 MiB ran
-# 1.07-1.25x faster than 4 MiB.  So the default is half of the largest cache per core
-# the machine reports (see `cache_batch_bytes`), kept between 256 KiB and 4 MiB.
+# measured on a 2-core machine (tests/benchmarks.py), 4 MiB batches, which stay in cache,
+# ran the same costs 1.0-2x faster than 256 MB ones.  Batches sized from the cache
+# (256 KiB - 1 MiB) were measured too, and were not faster: 0.93-0.96x the time of
+# 4 MiB for an elementwise cost, but 1.1-1.9x for costs of many small operations per
+# batch (their per-call overhead grows with the number of batches), so 4 MiB stays.
 # Settable: a cost with a large fixed cost per call (a compiled or accelerator kernel)
 # may want bigger batches.
-SMALLEST_BATCH_BYTES = 2**18
-LARGEST_BATCH_BYTES = 4 * 2**20
-
-
-def cache_batch_bytes(sizes=None) -> int:
-    """The default batch memory: half the largest data cache per core, within bounds.
-
-    Parameters
-    ----------
-    sizes : list of int, optional
-        Cache sizes in bytes (per core); read from /sys on Linux when None.  Where
-        none can be read, the largest bound (4 MiB, the former fixed default).
-
-    Returns
-    -------
-    int
-        A power of two between SMALLEST_BATCH_BYTES and LARGEST_BATCH_BYTES.
-
-    Examples
-    --------
-    >>> cache_batch_bytes([48 * 2**10, 2 * 2**20])
-    1048576
-    >>> cache_batch_bytes([])
-    4194304
-    """
-    if sizes is None:
-        sizes = _cache_sizes()
-    if not sizes:
-        return LARGEST_BATCH_BYTES
-    half = max(sizes) // 2
-    power = 1 << max(half, 1).bit_length() - 1          # round down to a power of two
-    return int(min(LARGEST_BATCH_BYTES, max(SMALLEST_BATCH_BYTES, power)))
-
-
-def _cache_sizes() -> list:
-    """Sizes of the data and unified caches private to CPU 0 (L1, L2; L3 when it is
-    not shared), in bytes; [] where the system does not say (not Linux)."""
-    root = "/sys/devices/system/cpu/cpu0/cache"
-    sizes = []
-    try:
-        entries = sorted(os.listdir(root))
-    except OSError:
-        return sizes
-    for entry in entries:
-        try:
-            with open(os.path.join(root, entry, "type")) as f:
-                kind = f.read().strip()
-            with open(os.path.join(root, entry, "size")) as f:
-                text = f.read().strip()
-            with open(os.path.join(root, entry, "shared_cpu_list")) as f:
-                shared = f.read().strip()
-        except OSError:
-            continue
-        if kind == "Instruction" or not text:
-            continue
-        multiplier = {"K": 2**10, "M": 2**20, "G": 2**30}.get(text[-1].upper(), 1)
-        number = text[:-1] if text[-1].isalpha() else text
-        if number.isdigit() and shared in ("0", "0-0"):
-            sizes.append(int(number) * multiplier)
-    return sizes
-
-
-DEFAULT_BATCH_BYTES = cache_batch_bytes()
+DEFAULT_BATCH_BYTES = 4 * 2**20
 DEFAULT_CHUNK_BYTES = DEFAULT_BATCH_BYTES   # the former name, read by tests/benchmarks.py
 PROGRESS_AFTER_SECONDS = 2.0       # show a bar when the run looks longer than this
 
@@ -176,7 +115,7 @@ def _value_dtype(amounts):
 
 def _point(base: np.ndarray, where, amount) -> np.ndarray:
     """A fresh copy of the point base + amount * where (for costs that edit or keep
-    their input; the others get the shared buffer of `_Points`)."""
+    their input; the others share one buffer, see `_serial_pass`)."""
     v = base.astype(np.complex128) if isinstance(amount, complex) else base.copy()
     if _is_coordinate(where):
         v[where] += amount
@@ -207,61 +146,9 @@ def _chunks(where, amounts):
             (a.tolist() if isinstance(a, np.ndarray) else list(a))
 
 
-class _Points:
-    """The points of a serial run in one reused buffer.
-
-    A coordinate request shifts one entry before the call and sets it back after:
-    O(1) work per point, where a fresh copy of the base costs O(n) (half of the time
-    of a check at n = 1e5).  This is only safe for a cost that neither edits nor keeps
-    its input: editing costs (seen at the base point) get copies from the start; a
-    cost seen keeping a reference to its input (the buffer's reference count grew
-    during the call) is left the buffer as it saw it and gets copies from then on;
-    and the caller checks `intact()` at the end of the run (a cost that edits its
-    input only at some points), redoing the run with copies if it is not.
-    """
-
-    def __init__(self, base: np.ndarray, complex_values: bool, reuse: bool):
-        self.base = base
-        self.dtype = np.complex128 if complex_values else np.float64
-        self.reuse = reuse
-        self.buffer = None
-        self.references = 0
-        self.spoiled = False         # the cost changed the buffer before it was let go
-
-    def point(self, where, amount) -> np.ndarray:
-        """The point base + amount * where: the shifted buffer, or a fresh copy."""
-        if not self.reuse:
-            return _point(self.base, where, amount)
-        if self.buffer is None:
-            self.buffer = self.base.astype(self.dtype)      # a copy of the runner's own
-            self.references = sys.getrefcount(self.buffer)
-        if _is_coordinate(where):
-            self.buffer[where] += amount
-        elif where is not None:
-            np.add(self.base, amount * where, out=self.buffer)
-        return self.buffer
-
-    def restore(self, where, amount) -> None:
-        """Set the buffer back after a call; let it go if the cost kept it."""
-        if self.buffer is None:
-            return
-        if sys.getrefcount(self.buffer) > self.references:
-            # The cost (or an exception's traceback) still holds the array it got: leave
-            # it as the cost saw it, and give fresh copies from now on.
-            seen = _point(self.base, where, amount)
-            self.spoiled = not np.array_equal(self.buffer, seen, equal_nan=True)
-            self.reuse, self.buffer = False, None
-            return
-        if _is_coordinate(where):
-            self.buffer[where] = self.base[where]
-        elif where is not None:
-            self.buffer[:] = self.base
-
-    def intact(self) -> bool:
-        """No point was spoiled: the buffer still holds the base point (or was unused)."""
-        if self.buffer is None:
-            return not self.spoiled
-        return bool(np.array_equal(self.buffer, self.base, equal_nan=True))
+def _kept_point_changed(buffer, base, where, amount) -> bool:
+    """A cost kept the shared buffer: did it change it before it was let go?"""
+    return not np.array_equal(buffer, _point(base, where, amount), equal_nan=True)
 
 
 def _run_serial(cost, layout, base, where, amounts, start, bar, stop=None, reuse=True):
@@ -271,8 +158,8 @@ def _run_serial(cost, layout, base, where, amounts, start, bar, stop=None, reuse
     between two calls (not only inside the cost) still returns what was finished.
     `stop`, a threading.Event shared with the caller, ends the loop early: the main
     thread sets it when a thread pool's share is no longer wanted.  `reuse`: the
-    points may share one buffer (see _Points); a run whose buffer the cost changed
-    is done again with copies.
+    points may share one buffer; a run whose buffer the cost changed
+    is done again with copies (see _serial_pass).
     """
     values, failures, interrupted, intact = _serial_pass(cost, layout, base, where, amounts,
                                                         start, bar, stop, reuse)
@@ -285,21 +172,44 @@ def _run_serial(cost, layout, base, where, amounts, start, bar, stop=None, reuse
 
 
 def _serial_pass(cost, layout, base, where, amounts, start, bar, stop, reuse):
-    """One pass of `_run_serial`: (values, failures, interrupted, buffer intact)."""
+    """One pass of `_run_serial`: (values, failures, interrupted, points intact).
+
+    With `reuse`, the points live in one buffer: a coordinate request shifts one entry
+    before the call and sets it back after (O(1) per point, where a fresh copy of the
+    base costs O(n): half of the time of a check at n = 1e5).  Safe only for a cost
+    that neither edits nor keeps its input: editing costs (seen at the base point) get
+    copies (reuse False); a cost seen keeping a reference (the buffer's reference count
+    grew during the call, e.g. a cache of the last point) is left the buffer as it saw
+    it and gets copies from then on; and a buffer that no longer holds the base at the
+    end (a cost that edits its input at some points only) makes the caller redo the run
+    with copies.
+    """
     m = len(amounts)
     dtype = _value_dtype(amounts)
     values = _missing(m, dtype)
     failures = {}
     is_complex = dtype == np.complex128
     build = rebuilder(layout, complex_values=is_complex)
-    points = _Points(base, is_complex, reuse)
+    shared = base.astype(dtype) if reuse else None      # the runner's own copy
+    references = sys.getrefcount(shared) if reuse else 0
+    spoiled = False
     try:
         for lo, where_k, amounts_k in _chunks(where, amounts):
             for k, (w, amount) in enumerate(zip(where_k, amounts_k), lo):
                 if stop is not None and stop.is_set():
                     return values, failures, True, True
+                coordinate = type(w) is int or isinstance(w, np.integer)
+                if shared is None:
+                    v = _point(base, w, amount)
+                elif coordinate:
+                    shared[w] += amount
+                    v = shared
+                else:
+                    if w is not None:
+                        np.add(base, amount * w, out=shared)
+                    v = shared
                 try:
-                    y = as_scalar(cost(build(points.point(w, amount))))
+                    y = as_scalar(cost(build(v)))
                     if is_complex and not isinstance(y, complex):
                         raise NotComplexSafeError(NOT_COMPLEX_SAFE)
                     values[k] = y
@@ -308,15 +218,26 @@ def _serial_pass(cost, layout, base, where, amounts, start, bar, stop, reuse):
                 except Exception as exc:  # noqa: BLE001 - any failure of user code is data here
                     failures[start + k] = exc
                     del exc
-                if points.reuse:
-                    points.restore(w, amount)
+                del v
+                if shared is not None:
+                    if sys.getrefcount(shared) > references:
+                        # Kept by the cost (or a stored exception's traceback): leave it
+                        # as the cost saw it; fresh copies from now on.
+                        spoiled = _kept_point_changed(shared, base, w, amount)
+                        shared = None
+                    elif coordinate:
+                        shared[w] = base[w]
+                    elif w is not None:
+                        shared[:] = base
                 if bar is not None:
                     bar.update(1)
     except KeyboardInterrupt:
         if stop is not None:
             stop.set()     # the other threads' shares stop too
         return values, failures, True, True
-    return values, failures, False, points.intact()
+    intact = not spoiled if shared is None else \
+        bool(np.array_equal(shared, base, equal_nan=True))
+    return values, failures, False, intact
 
 
 def _run_share(cost, layout, base, where, amounts, start, reuse=True, stop=None):

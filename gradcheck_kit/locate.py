@@ -9,8 +9,18 @@ group testing", JASA 67, 1972: k wrong coordinates among n cost about
 k log2(n / k) probes instead of n.  Each coordinate the search isolates is then
 confirmed on its own with an ordinary stencil.
 
+Two measures cut the probes further (3 wrong of 1e6: about 20 probes, not 90).
+Weights are drawn once per coordinate, so a group's directional derivative is the
+sum of its halves': the second half of a split is inferred from the group and the
+first half, and probed only where the inferred value passes (a group is cleared
+only by a probe of its own).  And a failing group is first probed once more with
+weights tilted by position: a lone wrong coordinate's mismatch scales with its
+tilt, so the ratio of the two mismatches says where it is, within a range set by
+the error bounds (quantitative group testing); where the range holds no wrong
+coordinate, several share the group and it is halved as before.
+
 Random weights of random sign, between 1/2 and 3/2, keep two errors in one group
-from cancelling.  Groups are ranges of one random permutation, so memory stays
+from cancelling.  Groups are parts of one random permutation, so memory stays
 at a few vectors of length n, never n x n.
 """
 from __future__ import annotations
@@ -162,10 +172,8 @@ def _search(prober, members, group, found, pending):
             # The tilt found a wrong coordinate: search its range, then the rest, which
             # holds others only if the inner range does not explain the whole mismatch.
             others = np.concatenate([members[:at.start], members[at.stop:]])
-            rest = prober.rest(group, inner, others)
             _search(prober, members[at], inner, found, pending)
-            if prober.fails(rest):
-                _search(prober, others, rest, found, pending)
+            _search(prober, others, _inferred(prober, group, inner, others), found, pending)
             _drop(pending, members)
             return
         # The ratio pointed at no wrong coordinate: several share the group; halve it.
@@ -174,11 +182,22 @@ def _search(prober, members, group, found, pending):
     right = prober.rest(group, left, members[mid:])
     if prober.fails(left):
         _search(prober, members[:mid], left, found, pending)
-    if prober.fails(right) or not prober.fails(left):
+        _search(prober, members[mid:], _inferred(prober, group, left, members[mid:]),
+                found, pending)
+    else:
         # A group that failed holds a wrong coordinate: where the left half passes, the
         # right half is searched even if its inferred value happens to agree.
         _search(prober, members[mid:], right, found, pending)
     _drop(pending, members)
+
+
+def _inferred(prober, whole, part, members):
+    """The measurement of `members` = whole minus part, inferred where it fails; None
+    (measure it) where it passes: the inferred value carries the error bounds of two
+    probes, so a small mismatch could hide in it, and a group is only cleared by a
+    probe of its own."""
+    rest = prober.rest(whole, part, members)
+    return rest if prober.fails(rest) else None
 
 
 def _drop(pending, members) -> None:

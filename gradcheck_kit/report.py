@@ -56,7 +56,7 @@ SCHEMA_VERSION = 2
 TABLE_ROWS = 10  # rows shown in the text table; the rest are counted
 
 
-@dataclass
+@dataclass(slots=True)   # no __dict__ per row: a full check of n coordinates holds n rows
 class Row:
     """One checked coordinate: its name, the two values, their difference and verdict.
 

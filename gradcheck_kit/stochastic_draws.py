@@ -9,15 +9,14 @@ recorded for that draw alone.
 """
 from __future__ import annotations
 
-import os
-
 import pickle
-from concurrent.futures import Executor, ProcessPoolExecutor
+from concurrent.futures import Executor
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .errors import CheckInputError
+from .evaluate import executor_workers, is_process_pool
 from .tree import Layout, flatten_like, rebuild
 
 WHAT = "sample_gradient's draw"
@@ -87,7 +86,7 @@ class DrawRunner:
                 not hasattr(executor, "submit"):
             raise CheckInputError(
                 f"executor: expected a concurrent.futures.Executor, got {type(executor).__name__}")
-        if isinstance(executor, ProcessPoolExecutor):
+        if is_process_pool(executor):
             try:
                 pickle.dumps(sample_gradient)
             except Exception as exc:  # noqa: BLE001
@@ -125,7 +124,7 @@ class DrawRunner:
         return np.concatenate(rows) if rows else np.empty((0, self.layout.size)), failures
 
     def _pooled(self, numbers, bar):
-        workers = os.cpu_count() or 4   # executors do not say how many workers they have
+        workers = executor_workers(self.executor)
         pieces = np.array_split(np.asarray(numbers), min(len(numbers), 4 * workers))
         futures = [self.executor.submit(draw_chunk, self.sample_gradient, self.layout,
                                         self.base, self.entropy, part)

@@ -354,6 +354,11 @@ def leaves_and_indices(layout: Layout, flat_indices) -> tuple:
     return numbers, index
 
 
+# Up to this many positions, entry_names names them one by one (numpy's per-call cost
+# exceeds the loop's).
+FEW_ENTRIES = 32
+
+
 def entry_names(layout: Layout, flat_indices) -> tuple:
     """(names, leaf names, index tuples) of many flat positions, as `entry_name` writes
     them, computed a leaf at a time.
@@ -364,7 +369,12 @@ def entry_names(layout: Layout, flat_indices) -> tuple:
     >>> entry_names(layout, [4, 6])
     (['W[1, 1]', 'b[0]'], ['W', 'b'], [(1, 1), (0,)])
     """
-    numbers, index = leaves_and_indices(layout, flat_indices)
+    flat = np.asarray(flat_indices, dtype=np.int64).reshape(-1)
+    if flat.size <= FEW_ENTRIES:      # a handful of rows: the plain loop costs less
+        found = [leaf_and_index(layout, i) for i in flat.tolist()]
+        return ([entry_name(leaf, index) for leaf, index in found],
+                [leaf.name for leaf, _ in found], [index for _, index in found])
+    numbers, index = leaves_and_indices(layout, flat)
     names, leaf_names, tuples = [None] * numbers.size, [None] * numbers.size, \
         [None] * numbers.size
     for k in np.unique(numbers).tolist():
@@ -400,8 +410,3 @@ def leaf_eps(layout: Layout) -> np.ndarray:
     """Machine epsilon of each coordinate's own dtype."""
     return np.repeat([np.finfo(leaf.dtype).eps for leaf in layout.leaves],
                      [leaf.size for leaf in layout.leaves])
-
-
-# The old name, until pipeline.rows_of imports leaf_and_index (it was easy to confuse
-# with the group-testing module `locate`).
-locate = leaf_and_index
