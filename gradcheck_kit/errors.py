@@ -48,8 +48,13 @@ class ExecutorError(CheckInputError):
     shut down, or `submit` returned something that is not a future.
 
     The cost's own exceptions never end up here (they become error rows);
-    this is the executor failing.  `.report` holds the partial report (the
-    coordinates finished before), or None where the check had not got that far.
+    this is the executor failing.
+
+    Attributes
+    ----------
+    report : GradientReport or None
+        The partial report (the coordinates finished before), or None where the check
+        had not got that far.
     """
 
     def __init__(self, message, report=None):
@@ -58,7 +63,13 @@ class ExecutorError(CheckInputError):
 
 
 class GradientMismatchError(AssertionError):
-    """Raised by assert_gradient_matches; the message is the text report, `.report` the data."""
+    """Raised by assert_gradient_matches when the check fails.
+
+    Attributes
+    ----------
+    report : GradientReport
+        The failed check; the exception's message is its text.
+    """
 
     def __init__(self, report):
         super().__init__(report.to_text())
@@ -137,4 +148,10 @@ class LongCheckWarning(UserWarning):
 
     The command line prints it on stderr as soon as it is issued; in the API it is a warning
     (and the same sentence is a note of the report).
+
+    Examples
+    --------
+    >>> import warnings
+    >>> with warnings.catch_warnings():
+    ...     warnings.simplefilter("error", LongCheckWarning)   # make a long check stop
     """

@@ -337,12 +337,14 @@ def central_error(derivative, f0, base, eps, eps_f, noise, curvature, third) -> 
     return est.error
 
 
-def central_tolerances(analytic, numeric, verdict, error, margin=10.0) -> tuple:
+def central_tolerances(analytic, numeric, verdict, error, margin=1.0) -> tuple:
     """(rtol, atol) that central differences pass on the agreeing rows, with `margin`.
 
     A central difference can be off from the check's value by its own error on top
     of today's difference: the rule of `verdicts.suggest_tolerances` is applied to
-    |analytic - numeric| + error.
+    |analytic - numeric| + error.  `error` is already a bound (the error estimate's
+    promise, tests/calibration.py) and the result is rounded up to a power of ten, so
+    no further margin is added by default.
 
     Parameters
     ----------
@@ -358,7 +360,7 @@ def central_tolerances(analytic, numeric, verdict, error, margin=10.0) -> tuple:
     --------
     >>> central_tolerances(np.array([1.0]), np.array([1.0]), np.array(["agree"]),
     ...                    np.array([3e-10]))
-    (1e-08, 0.0)
+    (1e-09, 0.0)
     """
     widened = numeric + (np.abs(analytic - numeric) + error)
     return suggest_tolerances(widened, numeric, verdict, margin)

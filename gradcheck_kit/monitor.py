@@ -682,7 +682,28 @@ def _literal(tree, prefix, arrays, big, path=()) -> str:
 
 @dataclass
 class MonitorReport:
-    """What a GradientMonitor saw: one row per checked step, and where things went wrong."""
+    """What a GradientMonitor saw: one row per checked step, and where things went wrong.
+
+    Attributes
+    ----------
+    rows : list of StepRow
+        One per checked step: its directions, relative errors and verdict.
+    first_wrong_step, last_right_step : int or None
+        The first step whose check disagreed, and the last checked step before it that
+        agreed (the bug appeared in between).
+    saved : SavedPoint or None
+        The parameters at the first wrong step (`.write_npz`, `.write_case`, `.recheck`).
+    coordinate_report : GradientReport or None
+        The per-coordinate check run at the first wrong step.
+    steps_seen, evaluations, gradient_calls : int
+        Steps observed; cost evaluations and gradients the monitor spent itself.
+    budget, overhead : float
+        The share of the run's time allowed, and the share measured.
+    every : int or None
+        The fixed schedule, where one was given.
+    passed : bool
+        No checked step disagreed.
+    """
     rows: list
     first_wrong_step: int | None
     last_right_step: int | None

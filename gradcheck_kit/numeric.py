@@ -233,8 +233,11 @@ def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Nu
         done[:] = True
     s = setup.scale[coords]
     with np.errstate(all="ignore"):
-        near = stencils.Near(setup.f0, setup.eps_f, setup.line.noise,
-                             setup.line.curvature_s2 / s ** 2, 8 * setup.line.third / s ** 3)
+        # One-sided stencils see no curvature of their own: the largest any line saw.
+        bend = setup.line.largest_curvature_s2 if method in ("forward", "backward") \
+            else setup.line.curvature_s2
+        near = stencils.Near(setup.f0, setup.eps_f, setup.line.noise, bend / s ** 2,
+                             8 * setup.line.third / s ** 3)
         est = stencils.combine(method, values, h, s, near)
     return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
 

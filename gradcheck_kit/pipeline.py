@@ -26,7 +26,7 @@ from .hints import uphill_hint
 from . import notes as say
 from .reevaluate import Reevaluation, remainder_along
 from .report import GradientReport, Row, outside_note
-from .tree import coordinate_name, entry_name, flatten, leaf_and_index, leaf_eps, rebuild
+from .tree import coordinate_name, entry_names, flatten, leaf_eps, rebuild
 
 
 
@@ -240,7 +240,6 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
 def rows_of(setup: Setup, comp: Comparison) -> list:
     """The report's rows of the finished coordinates; names and numbers are computed a
     column at a time (tree.entry_names), the Row objects once each."""
-    from .tree import entry_names    # move to the module's imports
     num = comp.numeric
     done = np.flatnonzero(num.done)
     a = comp.analytic[num.coords][done]
@@ -544,6 +543,13 @@ def estimate_noise(cost, params):
         ``.level`` (absolute, one standard deviation of a value), ``.relative``,
         ``.order``, the values of the first line and their spacing, ``.evaluations``.
 
+    Raises
+    ------
+    CheckInputError, CheckTypeError
+        Bad params, or a cost that fails at params.
+    CheckInterrupted
+        Ctrl-C (``.report`` is None).
+
     Examples
     --------
     >>> import numpy as np
@@ -566,8 +572,18 @@ class NoiseEstimate:
 
     Attributes
     ----------
-    level, relative, order, values, spacing, evaluations
-        As commented below.
+    level : float
+        Absolute noise of one cost value (a standard deviation).
+    relative : float
+        level / |f(params)| (inf where the cost is 0).
+    order : int
+        The difference order the estimate came from (0: no noise seen).
+    values : ndarray
+        The cost values along the first noise line.
+    spacing : float
+        That line's spacing, relative to each coordinate's scale.
+    evaluations : int
+        Cost evaluations spent.
     """
     level: float          # absolute noise of one cost value (a standard deviation)
     relative: float       # level / |f(params)|

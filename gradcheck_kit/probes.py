@@ -91,13 +91,16 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
                                                     float(np.sum((v / scale) ** 2)))))
     if not seen:
         return Lines(stencils.LineFeatures.none(), False, False, undefined, v1)
-    # The larger noise level of the two; the other features (typical curvature, slope,
-    # third derivative) from the first line that was finite.
+    # The largest noise level; the other features (typical curvature, slope, third
+    # derivative) from the first line that was finite, and the largest curvature of all
+    # lines for the one-sided stencils, which see none themselves (one random direction
+    # can see a coordinate's curvature at a fraction of its size: the Rosenbrock minimiser).
     first = seen[0][1]
     features = stencils.LineFeatures(
         noise=max(f.noise for _, f in seen), order=first.order,
         curvature_s2=first.curvature_s2, slope=first.slope, third=first.third,
-        values=first.values, spacing=first.spacing)
+        values=first.values, spacing=first.spacing,
+        largest_curvature_s2=max(f.curvature_s2 for _, f in seen))
     quantized = any(stencils.looks_quantized(values) for values, _ in seen)
     flat = bool(np.all(seen[0][0] == f0))
     return Lines(features, quantized, flat, undefined, v1)

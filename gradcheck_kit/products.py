@@ -496,7 +496,15 @@ def _finite_base(values, names, what):
 
 @dataclass
 class ProductReport(GradientReport):
-    """A GradientReport whose rows are probes (random directions), not coordinates."""
+    """A GradientReport whose rows are probes (random directions), not coordinates.
+
+    Attributes
+    ----------
+    rows : list of Row
+        One per probe direction: the product given against the numeric one, along it.
+    passed, hints, notes, problems, evaluations, method
+        As for GradientReport.
+    """
 
     def to_text(self, max_rows: int = 10) -> str:
         body = render_text(self, max_rows).split("\n")[1:]

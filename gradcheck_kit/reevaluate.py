@@ -68,8 +68,6 @@ class RemainderResult:
         Multiples h of the direction, largest first.
     remainders : ndarray of float, shape (k,)
         |f(x + d) - f(x) - g.d| with d = h v as the parameters store it.
-    first_order : ndarray of float, shape (k,)
-        |f(x + d) - f(x)|, for comparison in a figure.
     fitted : ndarray of bool, shape (k,)
         The steps the order was fitted on.
     slope : float
@@ -87,7 +85,6 @@ class RemainderResult:
     passed: bool
     steps: np.ndarray
     remainders: np.ndarray
-    first_order: np.ndarray
     fitted: np.ndarray
     slope: float
     evaluations: int
@@ -256,7 +253,7 @@ def remainder_along(runner: CostRunner, base, layout: Layout, f0: float, eps_f: 
     none = np.zeros(len(steps), dtype=bool)
     g = np.asarray(g, dtype=np.float64)
     if not np.all(np.isfinite(g)):
-        return RemainderResult(float("nan"), False, steps, empty, empty.copy(), none,
+        return RemainderResult(float("nan"), False, steps, empty, none,
                                float("nan"), runner.evaluations, _non_finite_message(g, layout))
     rng = np.random.default_rng(seed)
     scale = stencils.scale_of(base)
@@ -268,7 +265,6 @@ def remainder_along(runner: CostRunner, base, layout: Layout, f0: float, eps_f: 
     f = run.values.real
     predicted = np.array([g @ d for d in moves])
     remainders = np.abs(f - f0 - predicted)
-    first = np.abs(f - f0)
     # rounding of the two values, their noise, and that of g.d from g's own rounding
     with np.errstate(invalid="ignore"):
         floor = (eps_f * np.maximum(abs(f0), np.abs(f)) + noise
@@ -305,7 +301,7 @@ def remainder_along(runner: CostRunner, base, layout: Layout, f0: float, eps_f: 
             why = (f"only {above} step{'s' if above != 1 else ''} had a remainder above "
                    "rounding, too few in a row to fit an order, so nothing was decided")
         message = "; ".join([why] + trouble)
-    return RemainderResult(order, passed, steps, remainders, first, fitted, slope,
+    return RemainderResult(order, passed, steps, remainders, fitted, slope,
                            runner.evaluations, message, kink)
 
 

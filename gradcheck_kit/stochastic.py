@@ -22,7 +22,7 @@ from . import stochastic_verdicts as sv
 from .errors import CheckInputError, CheckInterrupted
 from .stochastic_draws import DrawRunner
 from .stochastic_report import StochasticReport, StochasticRow
-from .tree import flatten, flatten_like, locate, entry_name, rebuild
+from .tree import entry_name, flatten, flatten_like, leaf_and_index, rebuild
 
 FIRST_ROUND = 64             # draws of the first round; each later round doubles the total
 MIN_DRAWS = 16               # the batch means need their groups filled
@@ -361,7 +361,7 @@ def _rows(layout, reference, s: stats.Summary, d: sv.Decision) -> list:
     se = stats.effective_error(s)
     rows = []
     for i in range(layout.size):
-        leaf, index = locate(layout, i)
+        leaf, index = leaf_and_index(layout, i)
         tested = bool(np.isfinite(d.low[i]))
         nan = float("nan")
         rows.append(StochasticRow(

@@ -47,6 +47,25 @@ class StochasticRow:
     reference's error included); `relative_bias` and `detectable` are relative to the
     coordinate's scale, max(|reference|, rms of the reference); `draws_needed` is set for
     noisy rows (0 elsewhere, -1 where no number of draws would do).
+
+    Attributes
+    ----------
+    name, parameter, index, flat_index
+        The coordinate, as in `Row`.
+    reference, reference_error : float
+        The full gradient's value and its own error bound (numeric references).
+    mean, bias, standard_error : float
+        Of the draws; bias = mean - reference.
+    low, high : float
+        The bias's simultaneous confidence interval.
+    relative_bias, detectable, scale : float
+        Bias over scale; the smallest relative bias the draws would find with 95% power.
+    draws_needed : int
+        For noisy rows, about how many draws would decide them.
+    verdict : str
+        "agree", "disagree", "noisy", "non-finite" or "error".
+    detail : str
+        Why, where the verdict needs a word.
     """
     name: str
     parameter: str
@@ -78,7 +97,30 @@ class StochasticRow:
 @dataclass
 class StochasticReport:
     """Result of `compare_stochastic_gradient`: `.passed`, `.rows`, `.hints`, `.notes`,
-    `str(report)`, `.to_dict()`, `.to_json(path=None)`, `.plot(path)`."""
+    `str(report)`, `.to_dict()`, `.to_json(path=None)`, `.plot(path)`.
+
+    Attributes
+    ----------
+    rows : list of StochasticRow
+        One per coordinate.
+    level, resolution : float
+        The family-wise false-alarm level, and the relative bias below which a
+        coordinate agrees.
+    draws : int
+        Draws taken, over `rounds` (the draws of each round).
+    seed : int
+        Replays the check draw for draw.
+    reference : str
+        Where the reference gradient came from ("cost" or "gradient").
+    evaluations, failed_draws, total : int
+        Cost evaluations of the reference, draws that raised, coordinates in params.
+    hints, notes, problems : list of str
+        Patterns of a bias; what the reader should know; what fails the check.
+    interrupted : bool
+        Ctrl-C came before the check was decided.
+    passed : bool
+        No problem, no interrupt and no failing row.
+    """
     rows: list
     level: float
     resolution: float

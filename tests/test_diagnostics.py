@@ -308,7 +308,7 @@ def test_tree_outputs_are_named_by_their_leaves():
     assert report.passed and "energy[2] wrt w[2]" in {r.name for r in report.rows}
 
 
-# --- the remainder-order check ---------------------------------------------------------------------
+# --- the remainder-order check ----------------------------------------------------------
 def taylor_cost(x):
     return anp.sum(anp.sin(x) ** 2) + anp.prod(anp.cos(x))
 
@@ -325,7 +325,7 @@ def test_taylor_order_two_for_the_right_gradient_and_one_for_a_wrong_one(seed):
     assert right.passed and abs(right.order - 2) <= 0.3, right
     wrong = gk.remainder_order(taylor_cost, x, lambda v: 1.01 * taylor_grad(v), seed=seed)
     assert not wrong.passed and abs(wrong.order - 1) <= 0.3, wrong
-    assert len(right.steps) == len(right.remainders) == len(right.first_order)
+    assert len(right.steps) == len(right.remainders) == len(right.fitted)
     assert gk.remainder_order(taylor_cost, x, seed=seed).passed  # autograd's gradient
 
 
