@@ -13,6 +13,13 @@ declaration was assigned to, else by the cost's ``__name__``.
 one, or a hypothesis strategy; with a strategy the case is checked at several
 drawn points and hypothesis shrinks each distinct failure to the simplest point
 that shows it.  hypothesis is imported only when a strategy is used.
+
+Two siblings declare the other checks in the same registry, so that the plugin and
+the command line collect, label, report and mark them like gradient cases:
+`stochastic_case` on a sampled gradient ``sample_gradient(params, rng)`` (is it right
+on average? `compare_stochastic_gradient`), and `product_case` on a function or cost
+whose J v, u^T J or H v product is checked (`compare_jvp`, `compare_vjp`,
+`compare_hvp`).
 """
 from __future__ import annotations
 
@@ -64,6 +71,89 @@ class Case:
     name: str
     examples: int = DEFAULT_EXAMPLES
     expect_mismatch: bool = False
+
+    kind = "gradient"
+
+    @property
+    def target(self):
+        """The decorated function (the cost)."""
+        return self.cost
+
+
+@dataclass
+class StochasticCase:
+    """One declared stochastic-gradient check (see `stochastic_case`).
+
+    Parameters
+    ----------
+    sample_gradient : callable
+        The decorated estimator, ``sample_gradient(params, rng)`` -> one draw.
+    params : structure or callable
+        Where to check: a parameter structure, or a function of a numpy Generator.
+    options : dict
+        Keyword options of `compare_stochastic_gradient`: the reference (``cost`` or
+        ``gradient``), ``level``, ``max_draws``, ``seed``, ``resolution``, ``progress``.
+    name : str
+        A label for messages.
+    expect_mismatch : bool
+        A planted bug: the case is as expected when the check fails.
+    """
+
+    sample_gradient: object
+    params: object
+    options: dict
+    name: str
+    expect_mismatch: bool = False
+
+    kind = "stochastic"
+
+    @property
+    def target(self):
+        """The decorated function (the estimator)."""
+        return self.sample_gradient
+
+
+@dataclass
+class ProductCase:
+    """One declared product check (see `product_case`).
+
+    Parameters
+    ----------
+    product_kind : str
+        "jvp", "vjp" or "hvp".
+    function : callable
+        The decorated function (jvp, vjp) or cost (hvp).
+    product : callable or None
+        The product checked; None lets autograd supply it.
+    params : structure or callable
+        Where to check: a parameter structure, or a function of a numpy Generator.
+    options : dict
+        Keyword options of the product check (probes, seed, rtol, atol; gradient for hvp).
+    name : str
+        A label for messages.
+    expect_mismatch : bool
+        A planted bug: the case is as expected when the check fails.
+    """
+
+    product_kind: str
+    function: object
+    product: object
+    params: object
+    options: dict
+    name: str
+    expect_mismatch: bool = False
+
+    @property
+    def kind(self) -> str:
+        return self.product_kind
+
+    @property
+    def target(self):
+        """The decorated function."""
+        return self.function
+
+
+CASE_TYPES = (Case, StochasticCase, ProductCase)
 
 
 class _Declaration(NamedTuple):
@@ -164,11 +254,24 @@ class CaseResult:
         if self.case.expect_mismatch:
             parts[-1] += ("\n  (this case declares a planted bug: the mismatch above was "
                           "expected)" if self.as_expected else
-                          "\n  this case declares a planted bug, but every coordinate agrees: "
+                          f"\n  this case declares a planted bug, but {passing_words(self.case)}: "
                           "the check missed it" if self.passed else
                           "\n  this case declares a planted bug, but the check could not run "
                           "at some drawn points")
         return "\n".join(parts)
+
+
+def passing_words(c) -> str:
+    """What a passing check of this kind of case found, in words.
+
+    Examples
+    --------
+    >>> passing_words(Case(None, None, 1.0, {}, "c"))
+    'every coordinate agrees'
+    """
+    if c.kind == "stochastic":
+        return "no coordinate is biased"
+    return "every coordinate agrees" if c.kind == "gradient" else "every probe agrees"
 
 
 def _failure_text(f: PointFailure) -> str:
@@ -257,11 +360,11 @@ def case(gradient=None, params=None, *, examples=DEFAULT_EXAMPLES, name=None,
 
 def _register(namespace: dict, declared: Case, named: bool) -> None:
     """Add a declaration to the registry of the module whose code applied the decorator."""
-    cost = declared.cost
+    cost = declared.target
     namespace.setdefault(REGISTRY, []).append(
         _Declaration(declared, _names_bound(namespace, cost), named))
     try:
-        if not isinstance(getattr(cost, CASE_ATTRIBUTE, None), Case):
+        if not isinstance(getattr(cost, CASE_ATTRIBUTE, None), CASE_TYPES):
             setattr(cost, CASE_ATTRIBUTE, declared)
     except (AttributeError, TypeError):  # a callable that takes no attributes (a builtin)
         pass
@@ -386,6 +489,229 @@ def _check_declaration(examples, name, expect_mismatch, options: dict) -> None:
     check_options(options, "case")
 
 
+STOCHASTIC_DEFAULTS = {"level": 1e-3, "max_draws": 4096, "seed": None, "resolution": 0.1,
+                       "progress": None}
+PRODUCT_KINDS = ("jvp", "vjp", "hvp")
+
+
+def stochastic_case(params=None, *, cost=None, gradient=None, level=1e-3, max_draws=4096,
+                    seed=None, resolution=0.1, progress=None, name=None,
+                    expect_mismatch=False):
+    """Declare a stochastic-gradient check on the decorated estimator; return a decorator.
+
+    The decorated function is ``sample_gradient(params, rng)``, which returns one
+    draw of a sampled gradient (a mini-batch, dropout or Monte Carlo estimate)
+    shaped like params.  The case asks `compare_stochastic_gradient` whether its
+    mean is the gradient of the full cost.  It sits in the same registry as
+    `case` declarations: the pytest plugin collects it as ``gradient[<label>]``,
+    ``gradcheck-kit check`` checks it, and their reports, JSON and planted-bug
+    marks are the same.  Every option is checked when the decorator is applied.
+
+    Parameters
+    ----------
+    params : structure or callable
+        Required.  Where to check: an array, float, or dict / list / tuple nest
+        of those, or a function of a numpy ``Generator`` returning one.
+        (Hypothesis strategies are for `case` only: each drawn point would be a
+        separate statistical test.)
+    cost : callable, optional
+        The deterministic full cost; its numeric gradient is the reference.
+    gradient : callable or values, optional
+        The full gradient (a function of params, or values).  Exactly one of
+        `cost` and `gradient` is given.
+    level, max_draws, resolution, progress
+        As in `compare_stochastic_gradient`.
+    seed : int, optional
+        The seed of the draws.  The declaration's seed is kept over a session's
+        (``--gradient-seed``, ``--seed``), which seeds only cases that give none:
+        a stochastic verdict at another seed is another random test, which may
+        raise a false alarm (at most `level` of the time).
+    name : str, optional
+        The case's label (default: the variable the declaration is assigned to,
+        else the function's ``__name__``).
+    expect_mismatch : bool, default False
+        Declares a planted bias: the case succeeds when the check fails.
+
+    Returns
+    -------
+    callable
+        The decorator; it registers the case in the calling module and returns the
+        estimator itself, unchanged.
+
+    Raises
+    ------
+    CheckTypeError
+        An ill-typed name or expect_mismatch, a bare ``@gk.stochastic_case``, or a
+        decorated object that is not callable.
+    CheckInputError
+        A missing params, a strategy as params, not exactly one reference, or an
+        option out of range.
+
+    Examples
+    --------
+    >>> import numpy as np, gradcheck_kit as gk
+    >>> data = np.linspace(-1.0, 1.0, 40)
+    >>> @gk.stochastic_case(params=np.array([0.5]), gradient=np.array([0.5]), seed=3)
+    ... def batch_gradient(w, rng):   # d/dw of mean((w - data)^2 / 2), 4 at a time
+    ...     return np.array([np.mean(w[0] - rng.choice(data, size=4, replace=False))])
+    >>> batch_gradient(np.array([0.5]), np.random.default_rng(0)).shape
+    (1,)
+    """
+    __tracebackhide__ = True
+    where = "stochastic_case"
+    _check_common(where, params, name, expect_mismatch, bare=callable(params) and cost is None
+                  and gradient is None)
+    if (cost is None) == (gradient is None):
+        raise CheckInputError(
+            f"{where}: give exactly one reference, cost= (the deterministic full cost, "
+            f"differentiated numerically) or gradient= (the full gradient: a function of "
+            f"params, or its values); got {'both' if cost is not None else 'neither'}")
+    for label, value in (("cost", cost), ("gradient", gradient)):
+        if isinstance(value, (str, bytes)):
+            raise CheckTypeError(f"{where}: {label}: expected a function"
+                                 + (" or values like params" if label == "gradient" else "")
+                                 + f", got {_kind(value)}")
+    from .stochastic import _check_options as check_stochastic   # the engine's own rules
+    try:
+        check_stochastic(level, max_draws, seed, resolution, progress, cost, gradient)
+    except CheckInputError as exc:
+        raise CheckInputError(f"{where}: {exc}") from None
+    options = {"cost": cost, "gradient": gradient, "level": level, "max_draws": max_draws,
+               "seed": seed, "resolution": resolution, "progress": progress}
+
+    def declare(sample_gradient):
+        __tracebackhide__ = True
+        if not callable(sample_gradient):
+            raise CheckTypeError(f"{where}: decorates a function sample_gradient(params, rng), "
+                                 f"got {type(sample_gradient).__name__}")
+        declared = StochasticCase(sample_gradient, params, options,
+                                  name or getattr(sample_gradient, "__name__", "sample_gradient"),
+                                  bool(expect_mismatch))
+        _register(sys._getframe(1).f_globals, declared, named=name is not None)
+        return sample_gradient
+    return declare
+
+
+def product_case(kind, product=None, params=None, *, gradient=None, probes=3, seed=None,
+                 rtol=None, atol=None, name=None, expect_mismatch=False):
+    """Declare a check of a Jacobian-vector, vector-Jacobian or Hessian-vector product.
+
+    Decorates the function (``kind="jvp"`` or ``"vjp"``) or the scalar cost
+    (``kind="hvp"``) whose product is checked, along random probes, by
+    `compare_jvp`, `compare_vjp` or `compare_hvp`.  It sits in the same registry
+    as `case` declarations, so the pytest plugin and ``gradcheck-kit check``
+    collect, report and mark it like them.  Options are checked when the
+    decorator is applied.
+
+    Parameters
+    ----------
+    kind : {"jvp", "vjp", "hvp"}
+        The product: ``jvp(params, v)`` = J v, ``vjp(params, u)`` = u^T J,
+        ``hvp(params, v)`` = H v (the Hessian of the cost times v).
+    product : callable or None
+        The product checked; None lets autograd supply it.
+    params : structure or callable
+        Required.  A parameter structure, or a function of a numpy Generator.
+    gradient : callable, optional
+        For ``kind="hvp"`` only: the gradient whose differences stand for H v
+        (None: autograd's).
+    probes, seed, rtol, atol
+        As in the product checks; a session's seed, rtol and atol win over them,
+        as for `case`.
+    name : str, optional
+        The case's label (default: the variable the declaration is assigned to,
+        else the function's ``__name__``).
+    expect_mismatch : bool, default False
+        Declares a planted bug: the case succeeds when the check fails.
+
+    Returns
+    -------
+    callable
+        The decorator; it registers the case and returns the function unchanged.
+
+    Raises
+    ------
+    CheckTypeError
+        An ill-typed option, or a decorated object that is not callable.
+    CheckInputError
+        An unknown kind, a missing params, a strategy as params, gradient= with a
+        kind other than "hvp", or a value out of range.
+
+    Examples
+    --------
+    >>> import numpy as np, gradcheck_kit as gk
+    >>> A = np.array([[2.0, 1.0], [1.0, 3.0]])
+    >>> @gk.product_case("hvp", lambda x, v: A @ v, params=np.array([0.2, -0.1]),
+    ...                  gradient=lambda x: A @ x)
+    ... def bowl(x):
+    ...     return 0.5 * x @ A @ x
+    >>> float(bowl(np.zeros(2)))
+    0.0
+    """
+    __tracebackhide__ = True
+    where = "product_case"
+    if kind not in PRODUCT_KINDS:
+        choices = ", ".join(map(repr, PRODUCT_KINDS))
+        raise CheckInputError(f"{where}: kind: expected one of {choices}, got {kind!r}")
+    _check_common(where, params, name, expect_mismatch, bare=False)
+    for label, value in (("product", product), ("gradient", gradient)):
+        if value is not None and not callable(value):
+            raise CheckTypeError(f"{where}: {label}: expected a function or None, got "
+                                 f"{_kind(value)}")
+    if gradient is not None and kind != "hvp":
+        raise CheckInputError(f"{where}: gradient= is for kind 'hvp' (the gradient whose "
+                              f"differences stand for H v); kind {kind!r} takes none")
+    if isinstance(probes, (bool, np.bool_)) or not isinstance(probes, numbers.Integral) \
+            or probes < 1:
+        raise CheckInputError(f"{where}: probes: expected an int >= 1, got {probes!r}")
+    from .products import check_seed, check_tolerance
+    try:
+        check_seed(seed)
+        check_tolerance(rtol, "rtol")
+        check_tolerance(atol, "atol")
+    except CheckInputError as exc:
+        raise CheckInputError(f"{where}: {exc}") from None
+    options = {"probes": int(probes), "seed": seed, "rtol": rtol, "atol": atol}
+    if kind == "hvp":
+        options["gradient"] = gradient
+
+    def declare(function):
+        __tracebackhide__ = True
+        if not callable(function):
+            raise CheckTypeError(f"{where}: decorates a function, got {type(function).__name__}")
+        declared = ProductCase(kind, function, product, params, options,
+                               name or getattr(function, "__name__", "function"),
+                               bool(expect_mismatch))
+        _register(sys._getframe(1).f_globals, declared, named=name is not None)
+        return function
+    return declare
+
+
+def _check_common(where, params, name, expect_mismatch, bare) -> None:
+    """params, name and expect_mismatch of a stochastic or product declaration."""
+    __tracebackhide__ = True
+    if bare:
+        raise CheckTypeError(f"{where}: got {_kind(params)} as params and no reference: write "
+                             f"@gk.{where}(params=..., cost=... or gradient=...) with "
+                             f"parentheses (a bare @gk.{where} passes the decorated function "
+                             f"in place of the options)")
+    if params is None:
+        raise CheckInputError(f"{where}: params= is required (a structure, or a function of a "
+                              "numpy Generator)")
+    if is_strategy(params):
+        raise CheckInputError(f"{where}: params: a hypothesis strategy draws many points, each "
+                              "its own check; give a structure or a function of a numpy "
+                              "Generator (strategies are for gk.case)")
+    if isinstance(params, (str, bytes)):
+        raise CheckTypeError(f"{where}: params: expected a structure of arrays or floats, or a "
+                             f"function of a numpy Generator, got {_kind(params)}")
+    if not isinstance(expect_mismatch, (bool, np.bool_)):
+        raise CheckTypeError(f"{where}: expect_mismatch: expected True or False, got "
+                             f"{expect_mismatch!r} ({type(expect_mismatch).__name__})")
+    if name is not None and (not isinstance(name, str) or not name):
+        raise CheckTypeError(f"{where}: name: expected a non-empty str or None, got {name!r}")
+
+
 def declared_cases(namespace: dict) -> list:
     """The cases declared by a module's code, in declaration order, with their labels.
 
@@ -426,8 +752,8 @@ def _assigned_name(declarations: list, k: int, namespace: dict) -> str:
     """The variable declaration k was assigned to: a name bound to its cost that was not
     bound when it was declared, but was by the next declaration of the same cost (or now)."""
     d = declarations[k]
-    later = next((e.taken for e in declarations[k + 1:] if e.case.cost is d.case.cost), None)
-    bound = later if later is not None else _names_bound(namespace, d.case.cost)
+    later = next((e.taken for e in declarations[k + 1:] if e.case.target is d.case.target), None)
+    bound = later if later is not None else _names_bound(namespace, d.case.target)
     new = [n for n in bound if n not in d.taken]
     return new[0] if new else d.case.name
 
@@ -457,16 +783,18 @@ def describe_point(point) -> str:
         return repr(point)
 
 
-def check_case(c: Case, **overrides) -> CaseResult:
+def check_case(c, **overrides) -> CaseResult:
     """Run one declared case.
 
     Parameters
     ----------
-    c : Case
+    c : Case, StochasticCase or ProductCase
         The declaration.
     **overrides
         compare_gradient options (method, seed, ...) that win over the declaration;
-        None values are ignored.
+        None values are ignored.  A product case takes only seed, rtol and atol of
+        them; a stochastic case only executor, progress, and seed where it
+        declares none (see `stochastic_case`).
 
     Returns
     -------
@@ -486,12 +814,49 @@ def check_case(c: Case, **overrides) -> CaseResult:
     >>> check_case(c, method="central").passed
     False
     """
-    options = {**c.options, **{k: v for k, v in overrides.items() if v is not None}}
+    given = {k: v for k, v in overrides.items() if v is not None}
+    if isinstance(c, StochasticCase):
+        return _check_stochastic(c, given)
+    if isinstance(c, ProductCase):
+        return _check_product(c, given)
+    options = {**c.options, **given}
     seed = options.get("seed")
     if is_strategy(c.params):
         return _check_drawn(c, options, seed)
     params = _call_params(c, seed) if is_params_function(c.params) else c.params
     report = compare_gradient(c.cost, params, c.gradient, **options)
+    return CaseResult(c, report, params)
+
+
+def _check_stochastic(c: StochasticCase, given: dict) -> CaseResult:
+    """The estimator's check.  Of the overrides only seed (when the case has none),
+    executor and progress apply; method, tolerances and coordinates are the gradient
+    checks' and do not."""
+    from .stochastic import compare_stochastic_gradient
+
+    options = dict(c.options)
+    if options.get("seed") is None:
+        options["seed"] = given.get("seed")
+    for key in ("executor", "progress"):
+        if key in given:
+            options[key] = given[key]
+    params = _call_params(c, options["seed"]) if is_params_function(c.params) else c.params
+    report = compare_stochastic_gradient(c.sample_gradient, params, **options)
+    return CaseResult(c, report, params)
+
+
+PRODUCT_OVERRIDES = ("seed", "rtol", "atol")   # the options a session may set on a product
+
+
+def _check_product(c: ProductCase, given: dict) -> CaseResult:
+    """The product's check, with a session's seed and tolerances winning (as for `case`)."""
+    from . import products
+
+    options = {**c.options, **{k: v for k, v in given.items() if k in PRODUCT_OVERRIDES}}
+    params = _call_params(c, options["seed"]) if is_params_function(c.params) else c.params
+    check = {"jvp": products.compare_jvp, "vjp": products.compare_vjp,
+             "hvp": products.compare_hvp}[c.product_kind]
+    report = check(c.function, params, c.product, **options)
     return CaseResult(c, report, params)
 
 

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import dataclasses
 import importlib
 import importlib.util
 import json
@@ -57,10 +58,13 @@ DESCRIPTION = """\
 Check the gradients of a Python module.
 
 TARGET is a .py file or a dotted module name: every case declared in it with
-@gradcheck_kit.case(...) is checked.  Or TARGET is FILE_OR_MODULE:COST, one cost
-function, with --params FILE.npz (or .npy) and --gradient FILE_OR_MODULE:NAME
-(left out: autograd differentiates the cost).  --params may be left out when
-COST is declared as a case with its params.
+@gradcheck_kit.case(...), stochastic_case(...) or product_case(...) is
+checked.  Or TARGET is FILE_OR_MODULE:COST, one cost function, with --params
+FILE.npz (or .npy) and --gradient FILE_OR_MODULE:NAME (left out: autograd
+differentiates the cost).  --params may be left out when COST is declared
+as a case with its params; every declaration on COST is then its own case,
+checked as declared when neither --gradient nor --params is given.  A
+stochastic case keeps a seed it declares over --seed.
 
 Exit status: 0 all checks as expected, 1 a mismatch, 2 a usage error or bad
 input, 130 interrupted, 141 the output closed before every case ran.  A case
@@ -390,26 +394,51 @@ def _collect_cases(args, importer: _Importer) -> list:
     if not callable(cost):
         raise _not_a_function("TARGET", args.target, cost)
     module = importer.module(module_spec)
-    declared = next((c for _, c in declared_cases(vars(module)) if c.cost is cost), None)
+    # Every declaration on COST, from the module's registry (the function's own
+    # attribute holds only the first): two declarations are two cases.
+    declared = [(label, c) for label, c in declared_cases(vars(module)) if c.target is cost]
+    if not args.gradient and not args.params and declared:
+        return declared                   # checked as declared, planted bugs included
+    gradient = None
     if args.gradient:
         gradient = _load_name(importer, args.gradient, "--gradient")
         if not callable(gradient):
             raise _not_a_function("--gradient", args.gradient, gradient)
-    else:
-        gradient = declared.gradient if declared is not None else None
-    if args.params:
-        if Path(args.params).suffix.lower() in (".pt", ".pth"):
-            params = load_torch_params(args.params)   # weights only: never a pickle's code
-        else:
-            params = load_params(args.params)
-    elif declared is not None:
-        params = declared.params
-    else:
-        raise UsageError(f"--params is needed: {name} declares no case with params")
-    options = dict(declared.options) if declared is not None else {}
+        declared = _gradient_declarations(declared, name)
+    params = _params_file(args.params) if args.params else None
+    if not declared:
+        if params is None:
+            raise UsageError(f"--params is needed: {name} declares no case with params")
+        return [(name, Case(cost, gradient, params, {}, name))]
+    if args.gradient and args.params:     # nothing left of the declarations but options
+        declared = [(name, declared[0][1])]
     # An explicit check carries no planted-bug expectation: its exit status says
-    # whether this gradient agrees.
-    return [(name, Case(cost, gradient, params, options, name))]
+    # whether this gradient (or these params) agree.
+    return [(label, _explicit(c, gradient, params)) for label, c in declared]
+
+
+def _params_file(path: str):
+    if Path(path).suffix.lower() in (".pt", ".pth"):
+        return load_torch_params(path)   # weights only: never a pickle's code
+    return load_params(path)
+
+
+def _gradient_declarations(declared: list, name: str) -> list:
+    """The gradient cases among the declarations on COST, which --gradient replaces in."""
+    kept = [(label, c) for label, c in declared if c.kind == "gradient"]
+    if declared and not kept:
+        raise UsageError(f"--gradient: {name} is declared as a {declared[0][1].kind} case, "
+                         "which has no gradient to replace; leave --gradient out")
+    return kept
+
+
+def _explicit(c, gradient, params):
+    """The declaration c with the command line's gradient and params, and no planted bug."""
+    params = c.params if params is None else params
+    if isinstance(c, Case):
+        return Case(c.cost, c.gradient if gradient is None else gradient, params,
+                    dict(c.options), c.name)
+    return dataclasses.replace(c, params=params, expect_mismatch=False)
 
 
 def _leaf_names(tree, prefix="") -> list:
@@ -718,6 +747,9 @@ def _case_params(label: str, c: Case, seed):
 def _locate_one(args, label: str, c: Case, executor) -> _Outcome:
     from .locate import locate_mismatches
 
+    if c.kind != "gradient":
+        raise UsageError(f"locate: case {label} is a {c.kind} case; group testing finds wrong "
+                         "coordinates of a gradient; use `gradcheck-kit check`")
     if c.options.get("vectorized"):
         raise UsageError(f"locate: case {label} has a vectorized cost, which group testing "
                          "calls one point at a time; use `gradcheck-kit check`")
@@ -737,7 +769,7 @@ def _check_one(args, label: str, c: Case, executor) -> _Outcome:
     try:
         result = check_case(c, **overrides)
     except CheckInputError as exc:
-        if args.params:
+        if args.params and c.kind == "gradient":
             misfit = _params_file_misfit(args.params, c.params, c.gradient)
             if misfit:
                 raise UsageError(misfit) from exc

@@ -1,10 +1,12 @@
 """pytest front end, loaded through the `pytest11` entry point.
 
-- Every case declared with `@gk.case(...)` by the code of a collected test module
-  becomes one test item, ``gradient[<label>]`` (see `gradcheck_kit.cases`: the
-  ``name=`` given, else the variable the declaration is assigned to).  Each
-  declaration is its own item, also two on one function; a case that a module
-  only imports is collected in the module that declared it.
+- Every case declared with `@gk.case(...)`, `@gk.stochastic_case(...)` or
+  `@gk.product_case(...)` by the code of a collected test module becomes one test
+  item, ``gradient[<label>]`` (see `gradcheck_kit.cases`: the ``name=`` given, else
+  the variable the declaration is assigned to).  Each declaration is its own item,
+  also two on one function; a case that a module only imports is collected in the
+  module that declared it.  ``--gradient-seed`` seeds a stochastic case only where
+  it declares no seed of its own.
 - Fixture `gradient_audit`: `.compare(cost, params, gradient=None, **options)` and
   `.assert_matches(...)`, with the session's options as defaults.
 - Marker `@pytest.mark.gradient_options(**options)`: options for one test.
@@ -22,6 +24,10 @@
   send their checks to the controller, which prints the section and writes the
   session report.  Only the printed lines (and, when a session report is asked
   for, each check's JSON) are kept, not the reports with their costs.
+- The plugin is loaded in every pytest session of an environment where gradcheck_kit
+  is installed, so this module imports only pytest, the standard library and
+  gradcheck_kit.errors; numpy and the engine are imported on the first declared
+  case, fixture use or option that needs them (tests/test_plugin_lazy.py).
 
 Session report (``--gradient-report PATH``), written atomically at the end::
 
@@ -35,7 +41,8 @@ Session report (``--gradient-report PATH``), written atomically at the end::
       passed          bool: every checked coordinate (and drawn point) agrees
       expect_mismatch bool: the case declares a planted bug
       as_expected     bool: passed, or a planted bug that was found
-      report          the gradient report (its own schema, see gradcheck_kit.report),
+      report          the check's report (its own schema: gradcheck_kit.report, or
+                      stochastic_report for a stochastic case),
                       for a drawn case the first distinct failure's or the last
                       point's; null when the check could not run
       error           why the check could not run (one message), or null
@@ -56,12 +63,13 @@ import pluggy
 import pytest
 import _pytest
 
-from . import plan
-from .cases import REGISTRY, check_case, check_options, declared_cases, describe_point
-from .errors import CheckInputError, GradientMismatchError
-from .files import UnwritablePathError, check_writable
-from .pipeline import compare_gradient
-from .report import write_atomically
+from .errors import CheckInputError, GradientMismatchError   # stdlib only: cheap to import
+
+# Copies of two constants, so that a session without gradient checks imports no numpy
+# (tests/test_plugin_lazy.py holds them equal to cases.REGISTRY and plan.METHOD_CHOICES).
+REGISTRY = "__gradient_cases__"
+METHOD_CHOICES = ("forward", "backward", "central", "five-point", "richardson",
+                  "complex-step", "auto")
 
 SESSION_SCHEMA = "gradcheck_kit/session-report"
 SESSION_SCHEMA_VERSION = 2
@@ -92,7 +100,7 @@ def pytest_addoption(parser):
     group = parser.getgroup("gradcheck_kit", "gradient checks")
     group.addoption("--gradient-method", default=None, metavar="METHOD",
                     help=f"numeric method for gradient checks: one of "
-                         f"{', '.join(plan.METHOD_CHOICES)} (default: auto)")
+                         f"{', '.join(METHOD_CHOICES)} (default: auto)")
     group.addoption("--gradient-seed", default=None, metavar="INT",
                     help="seed (an int >= 0) for sampled coordinates and drawn points")
     group.addoption("--gradient-report", default=None, metavar="PATH",
@@ -117,6 +125,7 @@ def session_settings(config) -> tuple:
     """
     method, source = _setting(config, "--gradient-method", "gradient_method")
     if method is not None:
+        from . import plan
         try:
             plan.check_method(method)
         except CheckInputError as exc:
@@ -126,6 +135,7 @@ def session_settings(config) -> tuple:
         seed = _parse_seed(seed, source)
     path, source = _setting(config, "--gradient-report", "gradient_report")
     if path is not None:
+        from .files import UnwritablePathError, check_writable
         path = Path(config.invocation_params.dir, path)   # tests may change the folder
         try:
             if not hasattr(config, "workerinput"):   # an xdist worker never writes it
@@ -153,6 +163,7 @@ def _parse_seed(text, source: str) -> int:
     # numpy refuses negative seeds; say so here, not in every test
     if seed < 0:
         raise pytest.UsageError(f"{source}: expected an int >= 0, got {seed}")
+    from . import plan
     try:
         plan.check_flags(seed=seed)
     except CheckInputError as exc:
@@ -170,6 +181,7 @@ def _session(config) -> _Session:
 
 
 def _marker_options(node) -> dict:
+    from .cases import check_options
     found = {}
     for mark in reversed(list(node.iter_markers("gradient_options"))):
         found.update(mark.kwargs)
@@ -180,8 +192,15 @@ def _marker_options(node) -> dict:
 # --- records: what the summary prints and the session report holds -------------------------
 
 def _worst(report) -> str:
-    return ", ".join(f"{r.name} ({r.verdict}, rel. error {r.relative_error:.2g})"
-                     for r in report.mismatches[:SUMMARY_ROWS]) or "; ".join(report.problems)
+    return ", ".join(_row_words(r) for r in report.mismatches[:SUMMARY_ROWS]) or \
+        "; ".join(report.problems)
+
+
+def _row_words(row) -> str:
+    """'W[1] (disagree, rel. error 0.1)'; a stochastic row gives its relative bias."""
+    if hasattr(row, "relative_error"):
+        return f"{row.name} ({row.verdict}, rel. error {row.relative_error:.2g})"
+    return f"{row.name} ({row.verdict}, rel. bias {row.relative_bias:.2g})"
 
 
 def _report_lines(node: str, report, tag: str = "") -> list:
@@ -211,7 +230,8 @@ def _record_case(config, node: str, result) -> None:
     summary = []
     if not result.as_expected:
         if result.passed:
-            summary = [f"{node}: the planted bug was not found: every coordinate agrees"]
+            from .cases import passing_words
+            summary = [f"{node}: the planted bug was not found: {passing_words(result.case)}"]
         for i, f in enumerate(result.failures or [None], 1):
             tag = f" (failure {i} of {len(result.failures)})" if len(result.failures) > 1 else ""
             if f is None and not result.passed:
@@ -229,6 +249,7 @@ def _record_case(config, node: str, result) -> None:
 def _drawn_entry(result):
     if not result.drawn:
         return None
+    from .cases import describe_point
     return {"points_checked": result.checked, "failures": [
         {"point": describe_point(f.point),
          "report": f.report.to_dict() if f.report is not None else None,
@@ -316,6 +337,7 @@ class GradientCaseItem(pytest.Item):
     def runtest(self):
         __tracebackhide__ = True
         try:
+            from .cases import check_case
             options = {**_session(self.config).options, **_marker_options(self)}
             result = check_case(self.case, **options)
         except Exception as exc:  # noqa: BLE001 - recorded, then shown by repr_failure
@@ -345,8 +367,10 @@ class GradientCaseItem(pytest.Item):
 @pytest.hookimpl(tryfirst=True)
 def pytest_pycollect_makeitem(collector, name, obj):
     # The registry of the module's own declarations; imported cases are not in it.
+    # Called for every name of every test module: the cheap test comes first.
     if name != REGISTRY or not isinstance(collector, pytest.Module):
         return None
+    from .cases import declared_cases
     return [GradientCaseItem.from_parent(collector, name=f"gradient[{label}]", case=c)
             for label, c in declared_cases(vars(collector.obj))]
 
@@ -378,6 +402,7 @@ class GradientAudit:
     def compare(self, cost, params, gradient=None, **options):
         """compare_gradient with the session's options; the check is recorded."""
         __tracebackhide__ = True
+        from .pipeline import compare_gradient
         report = compare_gradient(cost, params, gradient, **self._options(options))
         self.reports.append(report)
         _record_report(self._request.config, self._request.node.nodeid, "fixture", report)
@@ -446,6 +471,7 @@ def pytest_sessionfinish(session, exitstatus):
     document = {"schema": SESSION_SCHEMA, "schema_version": SESSION_SCHEMA_VERSION,
                 "title": SESSION_TITLE,
                 "checks": [r["entry"] for r in state.records if r["entry"] is not None]}
+    from .report import write_atomically
     try:
         write_atomically(state.report_path, json.dumps(document, indent=2) + "\n")
     except OSError as exc:   # checked at the start; the folder may have gone since

@@ -212,3 +212,43 @@ def test_scheduler_runs_a_file_module_on_a_dask_cluster(files, capsys):
                            "--method", "central", "--quiet")
     local, out_local, _ = run(capsys, files / "bad_mod.py", "--method", "central", "--quiet")
     assert code == local == 1 and out == out_local
+
+
+TWICE = textwrap.dedent("""
+    import numpy as np
+    import gradcheck_kit as gk
+
+    def spread(x):
+        return float(np.sum(np.cosh(x)))
+
+    def spread_gradient(x):
+        return np.sinh(x)
+
+    def spread_gradient_doubled(x):
+        return 2 * np.sinh(x)
+
+    right = gk.case(spread_gradient, params=np.array([0.3, -1.2]))(spread)
+    canary = gk.case(spread_gradient_doubled, params=np.array([0.3, -1.2]),
+                     expect_mismatch=True)(spread)
+""")
+
+
+def test_two_declarations_on_the_named_cost_are_two_cases(tmp_path, capsys):
+    """TARGET:COST reads the module's registry, not only the cost's first declaration."""
+    (tmp_path / "twice.py").write_text(TWICE)
+    code, out, _ = run(capsys, f"{tmp_path / 'twice.py'}:spread", "--quiet", "--json",
+                       tmp_path / "twice.json")
+    right, canary = out.strip().splitlines()
+    assert code == 0
+    assert right.startswith("PASS") and right.endswith("[right]")
+    assert canary.startswith("FAIL") and canary.endswith("[canary; planted bug found, as expected]")
+    checks = json.loads((tmp_path / "twice.json").read_text())["checks"]
+    assert [(c["case"], c["planted_bug"]) for c in checks] == [("right", None),
+                                                              ("canary", "found")]
+    # an explicit gradient replaces each declaration's own, with no planted-bug expectation
+    code, out, _ = run(capsys, f"{tmp_path / 'twice.py'}:spread", "--quiet", "--gradient",
+                       f"{tmp_path / 'twice.py'}:spread_gradient")
+    assert code == 0 and [line[:4] for line in out.strip().splitlines()] == ["PASS", "PASS"]
+    code, out, _ = run(capsys, f"{tmp_path / 'twice.py'}:spread", "--quiet", "--gradient",
+                       f"{tmp_path / 'twice.py'}:spread_gradient_doubled")
+    assert code == 1 and "planted" not in out
