@@ -145,7 +145,9 @@ def _walk(tree: Any, path: tuple, leaves: list, what: str, leaf_check=_check_lea
         children = [_walk(tree[k], path + (k,), leaves, what, leaf_check) for k in keys]
         return ("dict", type(tree), keys, children)
     if isinstance(tree, (list, tuple)):
-        children = [_walk(v, path + (i,), leaves, what, leaf_check) for i, v in enumerate(tree)]
+        # A namedtuple's leaves are named by field (q.slope[1]); other sequences by position.
+        keys = getattr(tree, "_fields", None) or range(len(tree))
+        children = [_walk(v, path + (k,), leaves, what, leaf_check) for k, v in zip(keys, tree)]
         return ("seq", type(tree), None, children)
     array, kind = leaf_check(tree, path, what)
     leaves.append((path, array, kind))
@@ -188,7 +190,11 @@ def flatten_like(tree: Any, layout: Layout, what: str) -> np.ndarray:
     skeleton = _walk(tree, (), found, what, _as_values)
     expected = [leaf.name for leaf in layout.leaves]
     got = [_leaf_name(p) for p, _, _ in found]
-    if _shape_of(skeleton) != _shape_of(layout.skeleton) or expected != got:
+    # Sequences match by position: a plain tuple for a namedtuple's fields is the same
+    # structure, though the namedtuple's leaves are named by field.
+    same = [_leaf_name(_by_position(leaf.path, layout.skeleton)) for leaf in layout.leaves] == \
+        [_leaf_name(_by_position(p, skeleton)) for p, _, _ in found]
+    if _shape_of(skeleton) != _shape_of(layout.skeleton) or not same:
         raise CheckInputError(
             f"{what} has a different structure from params: expected leaves {expected}, got {got}")
     vector = np.empty(layout.size, dtype=np.float64)
@@ -199,6 +205,23 @@ def flatten_like(tree: Any, layout: Layout, what: str) -> np.ndarray:
                 f"got {tuple(array.shape)}")
         vector[leaf.offset:leaf.offset + leaf.size] = np.ravel(array)
     return vector
+
+
+def _by_position(path: tuple, skeleton) -> tuple:
+    """The path with a namedtuple's field names replaced by their positions."""
+    out, node = [], skeleton
+    for key in path:
+        if node[0] == "seq":
+            fields = getattr(node[1], "_fields", None)
+            position = fields.index(key) if fields and key in fields else key
+            out.append(position)
+            node = node[3][position]
+        elif node[0] == "dict":
+            out.append(key)
+            node = node[3][node[2].index(key)]
+        else:
+            break
+    return tuple(out)
 
 
 def _in_key_order(tree, skeleton):

@@ -292,8 +292,6 @@ def test_a_namedtuple_gradient_with_a_wrong_field_is_found():
     assert not report.passed and [r.flat_index for r in report.mismatches] == [2]
 
 
-@pytest.mark.xfail(strict=True, reason="namedtuple leaves are named by position ('0[1]', "
-                                       "'1'), not by field name ('slope[1]', 'offset')")
 def test_namedtuple_coordinates_are_named_by_field():
     report = gk.compare_gradient(fit_cost, FIT, fit_gradient)
     assert [r.name for r in report.rows] == ["slope[0]", "slope[1]", "offset"]
