@@ -213,6 +213,9 @@ def build_parser() -> argparse.ArgumentParser:
     common.add_argument("--json", metavar="PATH", help="write the run as JSON (atomically)")
     common.add_argument("--quiet", action="store_true", help="print one line per case")
     common.add_argument("--no-progress", action="store_true", help="never show a progress bar")
+    common.add_argument("--with-rng", action="store_true",
+                        help="call the cost (and gradient) as f(params, rng) with one seeded "
+                             "generator for every call: checks one draw of a random cost")
 
     check = sub.add_parser("check", parents=[common], help="check the gradients of a module "
                            "(runs its code)", description=DESCRIPTION,
@@ -765,7 +768,8 @@ def _locate_one(args, label: str, c: Case, executor) -> _Outcome:
 def _check_one(args, label: str, c: Case, executor) -> _Outcome:
     overrides = {"method": args.method, "seed": args.seed, "rtol": args.rtol, "atol": args.atol,
                  "coordinates": args.chosen_coordinates, "executor": executor,
-                 "progress": False if args.no_progress else None}
+                 "progress": False if args.no_progress else None,
+                 "with_rng": True if getattr(args, "with_rng", False) else None}
     try:
         result = check_case(c, **overrides)
     except CheckInputError as exc:

@@ -780,6 +780,14 @@ class CostRunner:
         return Results(values, failures, stop is not None)
 
 
+def draw_seed(seed) -> int:
+    """The seed of with_rng's generator: the caller's seed itself (so seed=N replays the
+    draw a report names), or a fresh random one where none was given."""
+    if seed is not None:
+        return int(seed)
+    return int(np.random.SeedSequence().generate_state(1)[0])
+
+
 class SeededCall:
     """`fun(params)` that calls `fun(params, rng)` with a generator seeded the same way at
     every call (common random numbers): a dropout mask or a sampled mini-batch stays the

@@ -30,6 +30,7 @@ import numpy as np
 
 from .errors import CheckInputError
 from .tree import ROOT_NAME, leaves_of
+from .evaluate import draw_seed
 
 TORCH, JAX = "torch", "jax"
 # Values of a batched call that differ from a plain call by more than this (relative to
@@ -856,6 +857,7 @@ def adapt(kind, cost, params, analytic, *, scalar, analytic_name, keep_precision
     draw = engine_draw(options.get("seed")) if options.get("with_rng") else None
     if draw is not None:  # the cost takes (params, rng): the engine's draw here too
         cost = functools.partial(_with_generator, cost, draw)
+        options = dict(options, seed=draw)   # the engine then seeds with the same draw
     bridge, value, notes = _base_value((wide, own), cost, scalar, ())
     notes = _precision_notes(bridge, keep_precision) + notes
     extra = 1
@@ -922,9 +924,10 @@ def _analytic(bridge, cost, analytic, analytic_name):
 
 
 def engine_draw(seed) -> int:
-    """The seed of the generator the engine hands a with_rng cost at every call (the rule
-    of pipeline._seeded, which these calls must share so both sides see one draw)."""
-    return int(np.random.SeedSequence(seed).generate_state(1)[0])
+    """The seed of the generator the engine hands a with_rng cost at every call
+    (evaluate.draw_seed; the caller passes it on as the engine's seed, so that both sides
+    see one draw also where no seed was given)."""
+    return draw_seed(seed)
 
 
 def _with_generator(fun, draw, params):

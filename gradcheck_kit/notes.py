@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .probes import LARGEST_RELATIVE_NOISE
 from .verdicts import count, name_list
 
 
@@ -62,9 +63,12 @@ def quantized() -> str:
 
 
 def noisy(level: float, relative: float) -> str:
-    return (f"the cost is noisy: its values carry noise of about {level:.2g} ({relative:.2g} "
-            "relative, measured along three lines after More & Wild); steps and error "
-            "estimates allow for it")
+    # The relative precision is capped (probes.LARGEST_RELATIVE_NOISE): say "at least" there.
+    share = (f"{relative:.2g} relative" if relative < LARGEST_RELATIVE_NOISE else
+             f"{LARGEST_RELATIVE_NOISE:.2g} relative or more")
+    return (f"the cost is noisy: its values carry noise of about {level:.2g} ({share}, "
+            "measured along three lines after More & Wild); steps and error estimates allow "
+            "for it")
 
 
 def flat_but_sloped() -> str:
@@ -77,7 +81,7 @@ def flat_but_sloped() -> str:
 def seeded_draw(seed: int, gradient_too: bool) -> str:
     return (f"with_rng: every call of the cost{' and gradient' if gradient_too else ''} got a "
             f"generator seeded with {seed} (common random numbers), so this checks the "
-            "gradient of that one draw; pass seed= to choose the draw")
+            f"gradient of that one draw; seed={seed} replays it, another seed checks another")
 
 
 def duration(seconds: float) -> str:

@@ -17,7 +17,7 @@ from . import plan, probes, stencils, verdicts
 from .numeric import Numeric, numeric_derivatives, term_sizes
 from .analytic import analytic_values
 from .errors import CheckInputError, LongCheckWarning, interrupts_as_check_interrupted
-from .evaluate import CostRunner, SeededCall
+from .evaluate import CostRunner, SeededCall, draw_seed
 from .frameworks import takes_framework_values
 from .probes import Setup
 from .hints import central_error, central_tolerances
@@ -417,8 +417,9 @@ def _check_rng_argument(cost, with_rng) -> None:
     required = _required_positional(cost)
     if not with_rng and required == 2:
         raise CheckInputError("cost: it requires two arguments; if the second is a random "
-                              "generator, pass with_rng=True to call it as cost(params, rng) "
-                              "with the same seed at every call")
+                              "generator, pass with_rng=True (--with-rng on the command line) "
+                              "to call it as cost(params, rng) with the same seed at every "
+                              "call")
     if with_rng and required in (0, 1) and not _takes_two(cost):
         raise CheckInputError("cost: with_rng=True calls cost(params, rng), but this cost "
                               "takes one argument; drop with_rng or add the rng argument")
@@ -441,7 +442,7 @@ def _seeded(cost, gradient, seed, vectorized) -> tuple:
         raise CheckInputError("with_rng=True and vectorized=True cannot be combined: a batch "
                               "call gets one generator, so its rows would not share a draw; "
                               "pass vectorized=False")
-    draw = int(np.random.SeedSequence(seed).generate_state(1)[0])
+    draw = draw_seed(seed)
     cost = SeededCall(cost, draw)
     if callable(gradient):
         gradient = SeededCall(gradient, draw)

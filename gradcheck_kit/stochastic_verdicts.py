@@ -155,9 +155,15 @@ def _factor_sentence(c: float, c_error: float) -> str:
         return ("sign: on average the draws are the negative of the reference in every "
                 "coordinate: a flipped sign (a score-function term f * grad log p taken with "
                 "the wrong sign, or the gradient of the reward where the cost's is meant)")
-    if abs(c) <= 3.0 * c_error:
+    if abs(c) <= c_error:
         return ("zero on average: the draws average to zero where the reference does not: "
                 "the estimator misses its main term")
+    if abs(c) <= 3.0 * c_error:
+        # Not told apart from 0 yet, but not 0 either: name both readings.
+        return (f"small factor: on average the draws are {c:.2g} (+- {c_error:.1g}) times the "
+                "reference in every coordinate: a small factor such as batch size versus "
+                "data size (a mini-batch sum divided by N instead of B is off by B/N), or an "
+                "estimator that misses its main term; more draws (max_draws) tell them apart")
     size = f"{c:.4g}" + (f" (1/{1 / c:.4g})" if 0 < c < 1 else "")
     text = (f"factor: on average the draws are {size} times the reference in every "
             "coordinate: right direction, wrong length")

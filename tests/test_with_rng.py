@@ -90,3 +90,30 @@ def test_the_caller_arrays_are_unchanged():
     w = W.copy()
     gk.compare_gradient(cost, w, gradient, with_rng=True, seed=2)
     assert np.array_equal(w, W)
+
+
+def test_the_command_line_checks_one_draw_with_with_rng(tmp_path):
+    import subprocess
+    import sys
+    import textwrap
+    (tmp_path / "drawn.py").write_text(textwrap.dedent("""
+        import numpy as np
+        def cost(w, rng):
+            keep = rng.random(w.size) < 0.7
+            return 0.5 * np.sum((w * keep) ** 2)
+        def grad(w, rng):
+            keep = rng.random(w.size) < 0.7
+            return w * keep
+        def wrong(w, rng):
+            return w
+    """))
+    np.save(tmp_path / "w.npy", np.array([0.3, -1.2, 0.8, 2.0]))
+    codes = []
+    for gradient in ("grad", "wrong"):
+        out = subprocess.run([sys.executable, "-m", "gradcheck_kit", "check", "drawn.py:cost",
+                              "--gradient", f"drawn.py:{gradient}", "--params", "w.npy",
+                              "--with-rng", "--seed", "1"],
+                             cwd=tmp_path, capture_output=True, text=True, timeout=300)
+        codes.append(out.returncode)
+        assert "Traceback" not in out.stderr
+    assert codes == [0, 1]
