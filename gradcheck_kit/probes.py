@@ -54,11 +54,38 @@ def noise_direction(size: int, scale: np.ndarray, seed=0, sizes: int = 1) -> np.
     float64, for the complex-safety probe, where entries of one size can cancel
     (x + y along (1, -1)).
     """
+    sign, draws = _direction_draws(size, seed, sizes)
+    if sizes == 1:
+        return sign * stencils.power_of_two(scale * draws)
+    return sign * stencils.power_of_two(scale) * draws / 16
+
+
+# The draws of the directions of small parameter sets, by (size, seed, sizes): a check
+# builds four directions, and building a fresh generator cost more than a small check's
+# cost evaluations.  The same seed gives the same draws, so the values are unchanged.
+_DRAWS: dict = {}
+_DRAWS_KEPT = 64               # (size, seed, sizes) combinations kept
+_DRAWS_UP_TO = 4096            # larger directions are drawn afresh (they cost memory)
+
+
+def _direction_draws(size: int, seed, sizes: int) -> tuple:
+    """(signs, sizes) of noise_direction: read-only arrays, drawn from default_rng(seed)."""
+    key = (size, seed, sizes)
+    found = _DRAWS.get(key)
+    if found is not None:
+        return found
     rng = np.random.default_rng(seed)
     sign = rng.choice([-1.0, 1.0], size=size)
-    if sizes == 1:
-        return sign * stencils.power_of_two(scale * rng.uniform(0.5, 1.0, size=size))
-    return sign * stencils.power_of_two(scale) * rng.integers(16 - sizes, 16, size=size) / 16
+    draws = rng.uniform(0.5, 1.0, size=size) if sizes == 1 else \
+        rng.integers(16 - sizes, 16, size=size)
+    found = (sign, draws)
+    if size <= _DRAWS_UP_TO and isinstance(seed, int):
+        for array in found:
+            array.setflags(write=False)
+        if len(_DRAWS) >= _DRAWS_KEPT:
+            _DRAWS.clear()
+        _DRAWS[key] = found
+    return found
 
 
 def _line_values(runner: CostRunner, v, t, f0):

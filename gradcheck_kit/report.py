@@ -1,7 +1,8 @@
 """Stage 6, report: the GradientReport data and its renderers (text, JSON, figures).
 
-A report holds one row per checked coordinate (`Row`), the hints and notes the
-earlier stages wrote, the problems that fail it besides its rows, and the
+A report holds one row per checked coordinate (`Row`; a check keeps them as
+columns, `RowColumns`, and builds the Row objects only when `.rows` is read), the
+hints and notes the earlier stages wrote, the problems that fail it besides its rows, and the
 tolerances its agreeing rows pass.  It renders itself as text (`to_text`, also
 `str(report)`), as JSON (`to_dict`, `to_json`) and as figures (`plot`, needs
 matplotlib).  Its figures call the cost again through `reevaluation`, a small
@@ -45,15 +46,18 @@ from __future__ import annotations
 
 import json
 import math
-from collections import Counter
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from .files import write_atomically  # file writing lives in files.py
-from .verdicts import FAILING, VERDICTS, count
+from .tree import entry_names, leaves_and_indices
+from .verdicts import FAILING, VERDICTS, count, relative_error
 
 SCHEMA = "gradcheck_kit/gradient-report"
 SCHEMA_VERSION = 2
 TABLE_ROWS = 10  # rows shown in the text table; the rest are counted
+_ROWS_AT_ONCE = 4096  # rows built at a time where a renderer walks all of them
 
 
 @dataclass(slots=True)   # no __dict__ per row: a full check of n coordinates holds n rows
@@ -110,14 +114,255 @@ class Row:
         return self.verdict in FAILING
 
 
+_NUMBERS = ("analytic", "numeric", "absolute_error", "relative_error", "error_estimate")
+
+
+@dataclass(eq=False)
+class RowColumns:
+    """The rows of a report as columns: one array per number, verdict codes, and the
+    names either built on demand from the layout or given as lists.
+
+    A full check of n coordinates keeps about six vectors of n numbers here, where n
+    `Row` objects (names, index tuples, boxed floats) would take some sixty; the rows
+    are built from the columns only when asked for (`rows`).
+
+    Attributes
+    ----------
+    flat_index : ndarray of int64
+        Each row's position in the flat vector of all coordinates.
+    analytic, numeric, absolute_error, relative_error, error_estimate : ndarray of float64
+        The numbers of `Row`, one entry per row.
+    verdict : ndarray of uint8
+        Each row's verdict, as its position in `verdicts`.
+    verdicts : tuple of str
+        The verdict names the codes refer to.
+    details : dict
+        Row position -> detail, for the rows whose detail is not empty.
+    layout : tree.Layout or None
+        Names, parameters and indices come from it (``tree.entry_names``) ...
+    names, parameters, indices : list or None
+        ... or from these lists, where the rows were given ready-made.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from gradcheck_kit.tree import flatten
+    >>> _, layout = flatten({"W": np.zeros((2, 2))})
+    >>> columns = RowColumns.from_arrays(layout, [3], [1.0], [1.5], ["disagree"], [""])
+    >>> columns.rows()[0].name, len(columns)
+    ('W[1, 1]', 1)
+    """
+
+    flat_index: np.ndarray
+    analytic: np.ndarray
+    numeric: np.ndarray
+    absolute_error: np.ndarray
+    relative_error: np.ndarray
+    error_estimate: np.ndarray
+    verdict: np.ndarray
+    verdicts: tuple = VERDICTS
+    details: dict = field(default_factory=dict)
+    layout: object = None
+    names: list = None
+    parameters: list = None
+    indices: list = None
+
+    @classmethod
+    def from_arrays(cls, layout, flat_index, analytic, numeric, verdict, details,
+                    error_estimate=None) -> "RowColumns":
+        """Columns of the coordinates `flat_index` of `layout` from their numbers.
+
+        Parameters
+        ----------
+        layout : tree.Layout
+        flat_index : array_like of int
+        analytic, numeric : array_like of float
+        verdict : array_like of str
+            One of `VERDICTS` per row.
+        details : sequence of str, or dict
+            One per row ("" where none), or {row position: detail} of the rows that
+            have one.
+        error_estimate : array_like of float, optional
+            The numeric values' error estimates (0 when not given).
+
+        Returns
+        -------
+        RowColumns
+        """
+        a = np.asarray(analytic, dtype=np.float64).reshape(-1)
+        n = np.asarray(numeric, dtype=np.float64).reshape(-1)
+        with np.errstate(all="ignore"):
+            absolute, relative = np.abs(a - n), relative_error(a, n)
+        estimate = np.zeros(a.size) if error_estimate is None else \
+            np.asarray(error_estimate, dtype=np.float64).reshape(-1)
+        return cls(np.asarray(flat_index, dtype=np.int64).reshape(-1), a, n, absolute,
+                   np.asarray(relative, dtype=np.float64).reshape(-1), estimate,
+                   _codes(verdict, VERDICTS), VERDICTS,
+                   _details(details), layout)
+
+    @classmethod
+    def from_rows(cls, rows) -> "RowColumns":
+        """Columns holding the numbers of ready-made `Row` objects (and their names).
+
+        Parameters
+        ----------
+        rows : sequence of Row
+
+        Returns
+        -------
+        RowColumns
+        """
+        names = list(VERDICTS)
+        names += sorted({r.verdict for r in rows} - set(names))
+        numbers = [np.array([getattr(r, f) for r in rows], dtype=np.float64).reshape(-1)
+                   for f in _NUMBERS]
+        return cls(np.array([r.flat_index for r in rows], dtype=np.int64).reshape(-1), *numbers,
+                   _codes([r.verdict for r in rows], tuple(names)), tuple(names),
+                   {j: r.detail for j, r in enumerate(rows) if r.detail != ""}, None,
+                   [r.name for r in rows], [r.parameter for r in rows],
+                   [r.index for r in rows])
+
+    def __len__(self) -> int:
+        return int(self.flat_index.size)
+
+    def coded(self, verdicts) -> np.ndarray:
+        """Which rows have one of these verdicts (a boolean array)."""
+        table = np.array([v in verdicts for v in self.verdicts] + [False])
+        return table[self.verdict]
+
+    @property
+    def failing(self) -> np.ndarray:
+        """Which rows fail a report (disagree, non-finite, error)."""
+        return self.coded(FAILING)
+
+    def labels(self, positions) -> tuple:
+        """(names, parameter names, index tuples) of the rows at these positions."""
+        positions = np.asarray(positions, dtype=np.intp).reshape(-1)
+        if self.layout is not None:
+            return entry_names(self.layout, self.flat_index[positions])
+        at = positions.tolist()
+        return ([self.names[j] for j in at], [self.parameters[j] for j in at],
+                [self.indices[j] for j in at])
+
+    def rows(self, positions=None) -> list:
+        """`Row` objects of the rows at these positions (all rows when None), in order.
+
+        Parameters
+        ----------
+        positions : array_like of int, optional
+
+        Returns
+        -------
+        list of Row
+        """
+        positions = np.arange(len(self)) if positions is None else \
+            np.asarray(positions, dtype=np.intp).reshape(-1)
+        names, leaf_names, indices = self.labels(positions)
+        numbers = [getattr(self, f)[positions].tolist() for f in _NUMBERS]
+        verdict = [self.verdicts[c] for c in self.verdict[positions].tolist()]
+        details = [self.details.get(j, "") for j in positions.tolist()]
+        return [Row(*row) for row in zip(names, leaf_names, indices,
+                                         self.flat_index[positions].tolist(), *numbers,
+                                         verdict, details)]
+
+    def counts(self, positions=None) -> dict:
+        """Rows per verdict, in the order the verdicts first appear."""
+        codes = self.verdict if positions is None else self.verdict[positions]
+        if codes.size == 0:
+            return {}
+        found, first, number = np.unique(codes, return_index=True, return_counts=True)
+        return {self.verdicts[found[k]]: int(number[k]) for k in np.argsort(first).tolist()}
+
+    def worst(self, positions=None) -> tuple:
+        """(worst relative error, 'failing' | 'agreeing') over the failing rows, else the
+        agreeing ones; (None, None) when there are neither.  NaN counts as the largest."""
+        if positions is None:
+            positions = np.arange(len(self))
+        for over, pick in (("failing", self.failing), ("agreeing", self.coded(("agree",)))):
+            chosen = self.relative_error[positions[pick[positions]]]
+            if chosen.size:
+                return float(chosen[int(np.argmax(_sortable_array(chosen)))]), over
+        return None, None
+
+    def worst_first(self) -> np.ndarray:
+        """Row positions, failing rows first, larger relative errors first, then by
+        flat index (a stable order: rows that tie keep theirs)."""
+        return np.lexsort((self.flat_index, -_sortable_array(self.relative_error),
+                           ~self.failing))
+
+    def parameter_groups(self) -> list:
+        """(parameter name, row positions) per parameter, in the order they first appear."""
+        if len(self) == 0:
+            return []
+        if self.layout is not None:
+            numbers, _ = leaves_and_indices(self.layout, self.flat_index)
+            leaf_names = [leaf.name for leaf in self.layout.leaves]
+        else:
+            leaf_names = list(dict.fromkeys(self.parameters))
+            number_of = {name: k for k, name in enumerate(leaf_names)}
+            numbers = np.array([number_of[p] for p in self.parameters], dtype=np.int64)
+        group_of = {}     # leaves of one name (never two, but as the rows say) share a group
+        group = np.array([group_of.setdefault(name, len(group_of)) for name in leaf_names],
+                         dtype=np.int64)[numbers]
+        order = np.argsort(group, kind="stable")
+        cuts = np.flatnonzero(np.diff(group[order])) + 1
+        parts = np.split(order, cuts)
+        parts.sort(key=lambda part: part[0])
+        names = list(group_of)
+        return [(names[int(group[part[0]])], part) for part in parts]
+
+
+def _details(details) -> dict:
+    """{row position: detail} of the non-empty details, from a list or such a dict."""
+    pairs = details.items() if isinstance(details, dict) else enumerate(details)
+    return {int(j): d for j, d in pairs if d != ""}
+
+
+def _codes(verdicts, names: tuple) -> np.ndarray:
+    """Each verdict's position in `names` (a verdict not among them is an error)."""
+    verdicts = np.asarray(verdicts).reshape(-1)
+    codes = np.full(verdicts.size, len(names), dtype=np.uint8)
+    for k, name in enumerate(names):
+        codes[verdicts == name] = k
+    if verdicts.size and codes.max() == len(names):
+        raise ValueError(f"unknown verdict {str(verdicts[codes == len(names)][0])!r}; "
+                         f"expected one of {', '.join(names)}")
+    return codes
+
+
+def _sortable_array(x: np.ndarray) -> np.ndarray:
+    return np.where(np.isnan(x), np.inf, x)
+
+
+class _LazyRows:
+    """The `rows` field of a report: a list given, or columns whose `Row` objects are
+    built on first access and kept (see RowColumns)."""
+
+    def __get__(self, report, owner=None):
+        if report is None:
+            raise AttributeError("rows")     # a required field: no class-level default
+        state = report.__dict__
+        if state.get("_rows") is None and state.get("_columns") is not None:
+            state["_rows"] = state["_columns"].rows()
+        return state.get("_rows")
+
+    def __set__(self, report, value) -> None:
+        if isinstance(value, RowColumns):
+            report.__dict__.update(_columns=value, _rows=None)
+        else:
+            report.__dict__.update(_columns=None, _rows=value)
+
+
 @dataclass
 class GradientReport:
     """The result of a gradient (or Jacobian) check.
 
     Parameters
     ----------
-    rows : list of Row
-        One per checked coordinate, in the order checked.
+    rows : list of Row, or RowColumns
+        One per checked coordinate, in the order checked.  Given as columns (see
+        `from_columns`), the `Row` objects are built on first reading of ``.rows``
+        and kept; every summary, the text and the JSON are made from the columns.
     method : str
         The method used (the one asked for when the check did not run).
     evaluations : int
@@ -156,7 +401,7 @@ class GradientReport:
     (True, {'agree': 2}, 'x[1]')
     """
 
-    rows: list
+    rows: list = _LazyRows()   # a list of Row, or RowColumns whose rows are built when read
     method: str
     evaluations: int
     total: int
@@ -172,51 +417,92 @@ class GradientReport:
     suggested_central_atol: float | None = None
     reevaluation: object = field(default=None, repr=False, compare=False)
 
+    @classmethod
+    def from_columns(cls, columns: RowColumns, **fields) -> "GradientReport":
+        """A report whose rows are held as columns (see RowColumns): a check of many
+        coordinates keeps a few arrays instead of one object per row.
+
+        Parameters
+        ----------
+        columns : RowColumns
+        **fields
+            The other fields, as for the constructor (method, evaluations, total, ...).
+
+        Returns
+        -------
+        GradientReport
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from gradcheck_kit.tree import flatten
+        >>> _, layout = flatten(np.zeros(2))
+        >>> columns = RowColumns.from_arrays(layout, [0, 1], [1.0, 2.0], [1.0, 2.5],
+        ...                                  ["agree", "disagree"], ["", ""])
+        >>> report = GradientReport.from_columns(columns, method="central", evaluations=4,
+        ...                                      total=2)
+        >>> report.counts, report.mismatches[0].name
+        ({'agree': 1, 'disagree': 1}, 'x[1]')
+        """
+        return cls(rows=columns, **fields)
+
+    def columns(self) -> RowColumns:
+        """The rows as columns: those the report holds, or made from its list of rows."""
+        held = self.__dict__.get("_columns")
+        return held if held is not None else RowColumns.from_rows(self.rows)
+
+    @property
+    def checked(self) -> int:
+        """Number of rows (coordinates checked)."""
+        held = self.__dict__.get("_columns")
+        return len(held) if held is not None else len(self.rows)
+
     @property
     def passed(self) -> bool:
         """No failing row, no problem, not interrupted."""
-        return not self.interrupted and not self.problems and not self.mismatches
+        return not self.interrupted and not self.problems and not self.columns().failing.any()
 
     @property
     def ran(self) -> bool:
         """False when the check stopped before its first coordinate (see `problems`)."""
-        return bool(self.rows) or self.interrupted
+        return self.checked > 0 or self.interrupted
 
     @property
     def mismatches(self) -> list:
         """Failing rows, worst first."""
-        return [r for r in _worst_first(self.rows) if r.failing]
+        columns = self.columns()
+        order = columns.worst_first()
+        return self._rows_at(columns, order[columns.failing[order]])
 
     @property
     def counts(self) -> dict:
         """Number of rows per verdict."""
-        return dict(Counter(r.verdict for r in self.rows))
+        return self.columns().counts()
 
     @property
     def worst_relative_error(self):
         """Largest relative error over the failing rows, or over the agreeing rows when
         none fails (kinks and undecided rows carry no meaningful error); None if neither."""
-        return _worst(self.rows)[0]
+        return self.columns().worst()[0]
 
     @property
     def worst_relative_error_over(self):
         """'failing', 'agreeing' or None: the rows `worst_relative_error` is taken over."""
-        return _worst(self.rows)[1]
+        return self.columns().worst()[1]
 
     @property
     def parameters(self) -> list:
         """One summary per parameter: name, rows checked, verdict counts, worst relative
         error (taken as for the whole report) and the rows it is taken over."""
-        by = {}
-        for r in self.rows:
-            by.setdefault(r.parameter, []).append(r)
-        out = []
-        for name, rs in by.items():
-            worst, over = _worst(rs)
-            out.append({"name": name, "checked": len(rs),
-                        "counts": dict(Counter(r.verdict for r in rs)),
-                        "worst_relative_error": worst, "worst_relative_error_over": over})
-        return out
+        return _parameters(self.columns())
+
+    def _rows_at(self, columns: RowColumns, positions) -> list:
+        """The Row objects at these positions: from the list where there is one (the
+        same objects), else built from the columns (and not kept)."""
+        rows = self.__dict__.get("_rows")
+        if rows is not None:
+            return [rows[j] for j in np.asarray(positions).tolist()]
+        return columns.rows(positions)
 
     # --- renderers -----------------------------------------------------------------------
     def to_text(self, max_rows: int = TABLE_ROWS) -> str:
@@ -243,21 +529,28 @@ class GradientReport:
         -------
         dict
         """
+        columns = self.columns()
+        counts, (worst, over) = columns.counts(), columns.worst()
+        rows = self.__dict__.get("_rows")
+        if rows is None:      # one Row at a time, none kept: the dicts are what is asked for
+            rows = (row for start in range(0, len(columns), _ROWS_AT_ONCE)
+                    for row in columns.rows(np.arange(start, min(start + _ROWS_AT_ONCE,
+                                                                  len(columns)))))
         return {
             "schema": SCHEMA, "schema_version": SCHEMA_VERSION,
             "title": self.title, "passed": self.passed, "ran": self.ran, "method": self.method,
             "evaluations": self.evaluations, "interrupted": self.interrupted,
-            "checked": len(self.rows), "total": self.total, "counts": self.counts,
-            "worst_relative_error": _json_number(self.worst_relative_error),
-            "worst_relative_error_over": self.worst_relative_error_over,
+            "checked": self.checked, "total": self.total, "counts": counts,
+            "worst_relative_error": _json_number(worst),
+            "worst_relative_error_over": over,
             "suggested_rtol": _json_number(self.suggested_rtol),
             "suggested_atol": _json_number(self.suggested_atol),
             "suggested_central_rtol": _json_number(self.suggested_central_rtol),
             "suggested_central_atol": _json_number(self.suggested_central_atol),
             "problems": list(self.problems), "hints": list(self.hints), "notes": list(self.notes),
             "parameters": [{**p, "worst_relative_error": _json_number(p["worst_relative_error"])}
-                           for p in self.parameters],
-            "rows": [_row_dict(r) for r in self.rows],
+                           for p in _parameters(columns)],
+            "rows": [_row_dict(r) for r in rows],
             "extra": _jsonable(self.extra),
         }
 
@@ -333,23 +626,15 @@ def _row_dict(r: Row) -> dict:
             "detail": r.detail}
 
 
-def _worst_first(rows):
-    return sorted(rows, key=lambda r: (not r.failing, -_sortable(r.relative_error), r.flat_index))
-
-
-def _sortable(x):
-    return x if not math.isnan(x) else math.inf
-
-
-def _worst(rows) -> tuple:
-    """(worst relative error, 'failing' | 'agreeing') over the failing rows, else the
-    agreeing ones; (None, None) when there are neither."""
-    for over, pick in (("failing", lambda r: r.failing),
-                       ("agreeing", lambda r: r.verdict == "agree")):
-        chosen = [r.relative_error for r in rows if pick(r)]
-        if chosen:
-            return max(chosen, key=_sortable), over
-    return None, None
+def _parameters(columns: RowColumns) -> list:
+    """The per-parameter summaries of `GradientReport.parameters`."""
+    out = []
+    for name, positions in columns.parameter_groups():
+        worst, over = columns.worst(positions)
+        out.append({"name": name, "checked": int(positions.size),
+                    "counts": columns.counts(positions),
+                    "worst_relative_error": worst, "worst_relative_error_over": over})
+    return out
 
 
 def _fmt(x, digits=6):
@@ -386,10 +671,11 @@ def summary_line(report: GradientReport) -> str:
     if not report.ran:
         why = _first_clause(report.problems[0]) if report.problems else "no coordinate"
         return title + f"not run: {why}; {count(report.evaluations, 'evaluation')}"
-    counts = report.counts
-    checked = len(report.rows)
+    columns = report.columns()
+    counts = columns.counts()
+    checked = len(columns)
     bad = sum(counts.get(v, 0) for v in FAILING)
-    if not report.rows:
+    if not checked:
         parts = ["stopped before any coordinate finished"]
     elif bad:
         parts = [f"{bad} of {count(checked, 'coordinate')} fail"]
@@ -402,7 +688,7 @@ def summary_line(report: GradientReport) -> str:
         parts[0] += " (" + ", ".join(others) + ")"
     if checked < report.total:
         parts.append(f"of {report.total} in params")
-    worst, over = _worst(report.rows)
+    worst, over = columns.worst()
     if worst is not None:
         parts.append(f"worst relative error of the {over} rows {_fmt(worst, 1)}")
     parts.append(f"method {report.method}")
@@ -429,8 +715,9 @@ def render_text(report: GradientReport, max_rows: int = TABLE_ROWS) -> str:
     lines = [summary_line(report)]
     for p in report.problems:
         lines.append(f"  problem: {p}")
-    ordered = _worst_first(report.rows)
-    shown = ordered[:max_rows]
+    columns = report.columns()
+    ordered = columns.worst_first()
+    shown = report._rows_at(columns, ordered[:max_rows])
     if shown:
         width = max(10, max(len(r.name) for r in shown))
         lines.append(f"  {'coordinate':<{width}}  {'verdict':<10}  {'analytic':>14}  "
@@ -440,8 +727,8 @@ def render_text(report: GradientReport, max_rows: int = TABLE_ROWS) -> str:
                          f"{_fmt(r.numeric):>14}  {_fmt(r.relative_error, 1):>9}  "
                          f"{_fmt(r.error_estimate, 1):>9}" + (f"  {r.detail}" if r.detail else ""))
         rest = ordered[max_rows:]
-        if rest:
-            rest_counts = Counter(r.verdict for r in rest)
+        if rest.size:
+            rest_counts = columns.counts(rest)
             lines.append(f"  ... {len(rest)} more rows: " +
                          ", ".join(f"{n} {v}" for v, n in sorted(rest_counts.items())))
     params = report.parameters

@@ -343,8 +343,8 @@ def line_features(values, t: float, spread: float) -> LineFeatures:
     """
     f = np.asarray(values, dtype=float)
     mid, half = len(f) // 2, (len(f) // 2) * t
-    noise, order = noise_from_values(f)
     g = smooth_side(f)
+    noise, order = _noise_of_side(g.tolist())
     m = (len(g) - 1) // 2
     second = max(0.0, abs(g[2 * m] - 2 * g[m] + g[0]) - 4 * noise)
     slope = max(0.0, float(np.max(np.abs(f - f[mid]))) - 3 * noise)
@@ -360,17 +360,34 @@ def smooth_side(values) -> np.ndarray:
     differences; the side kept includes the point nearest the kink as an end point.
     """
     f = np.asarray(values, dtype=float)
-    second = np.abs(np.diff(f, 2))
-    if second.size >= 3:
-        k = int(np.argmax(second))
-        rest = np.delete(second, k)
-        if second[k] > 10 * max(float(np.median(rest)), 1e-300) and \
-                second[k] > 10 * np.finfo(float).eps * float(np.max(np.abs(f))):
-            p = k + 1                      # the point nearest the kink
-            side = f[:p + 1] if p + 1 >= len(f) - p else f[p:]
-            if len(side) >= 4:
-                return side
+    p = _kink_point(f.tolist())
+    if p is not None:
+        side = f[:p + 1] if p + 1 >= len(f) - p else f[p:]
+        if len(side) >= 4:
+            return side
     return f
+
+
+def _kink_point(f: list):
+    """The point nearest a spike in the second differences of the values f, or None.
+
+    Plain Python on the few values of a line (numpy's per-call cost was most of it):
+    the same float operations as np.diff, np.argmax, np.median and np.max, so the
+    same answer bit for bit.  A spike stands more than 10 times above the median of
+    the other second differences and above the rounding of the values.
+    """
+    second = [abs((c - b) - (b - a)) for a, b, c in zip(f, f[1:], f[2:])]
+    if len(second) < 3 or any(x != x for x in second):   # a NaN is never a spike
+        return None
+    k = second.index(max(second))      # the first of the largest, as np.argmax
+    rest = sorted(second[:k] + second[k + 1:])
+    half = len(rest) // 2
+    median = rest[half] if len(rest) % 2 else (rest[half - 1] + rest[half]) / 2
+    largest = max(abs(v) for v in f)
+    if second[k] > 10 * max(median, 1e-300) and \
+            second[k] > 10 * np.finfo(float).eps * largest:
+        return k + 1
+    return None
 
 
 def noise_from_values(values) -> tuple:
@@ -382,13 +399,20 @@ def noise_from_values(values) -> tuple:
     noise; so where both sides of a break near the middle are smooth, with a level
     a tenth of the whole line's or less, the level of the sides is the answer.
     """
-    f = smooth_side(values)
+    return _noise_of_side(smooth_side(values).tolist())
+
+
+def _noise_of_side(f: list) -> tuple:
+    """noise_from_values of values already on one smooth side (see smooth_side)."""
     level, order = _difference_table_noise(f)
     if level == 0 or len(f) < 7:
         return level, order
     best = (level, order)
     for p in range(3, len(f) - 3):
-        left, right = _difference_table_noise(f[:p + 1]), _difference_table_noise(f[p:])
+        left = _difference_table_noise(f[:p + 1])
+        if not (left[0] <= 0.1 * level and left[0] < best[0]):
+            continue        # the larger side cannot qualify: its right needs no table
+        right = _difference_table_noise(f[p:])
         sides = max(left[0], right[0])
         if sides <= 0.1 * level and sides < best[0]:
             best = (sides, max(left[1], right[1]))
@@ -409,7 +433,8 @@ def _difference_table_noise(f) -> tuple:
     this a quarter of a small check.  Every operation is the one numpy did, in its
     order (see _numpy_sum), so the results are bitwise those of the array version.
     """
-    values = [float(v) for v in np.asarray(f, dtype=float).reshape(-1)]
+    values = f if isinstance(f, list) else \
+        [float(v) for v in np.asarray(f, dtype=float).reshape(-1)]
     if not values or not all(math.isfinite(v) for v in values):
         return 0.0, 0
     size = max(abs(v) for v in values)
@@ -448,23 +473,32 @@ def _numpy_sum(a: list) -> float:
 
 
 def _difference_table_levels(f) -> tuple:
+    """(level, order) of values f scaled to at most 1 in size, all finite (so no
+    difference overflows or is NaN, and max / min say whether any is > 0 / < 0)."""
     diffs, sigmas = list(f), []
     for k in range(1, len(diffs) - 1):
         diffs = [b - a for a, b in zip(diffs, diffs[1:])]
         gamma = _GAMMA[k] if k < len(_GAMMA) else math.factorial(k) ** 2 / math.factorial(2 * k)
         mean = _numpy_sum([d * d for d in diffs]) / len(diffs)
-        sigmas.append((k, math.sqrt(gamma * mean),
-                       any(d > 0 for d in diffs) and any(d < 0 for d in diffs)))
+        sigmas.append((k, math.sqrt(gamma * mean), max(diffs) > 0 and min(diffs) < 0))
+        # The first consistent order, as soon as its next two are known: the orders
+        # above it cannot change the answer (it is nonzero, so not all vanish).
+        if len(sigmas) >= 3 and _consistent(*sigmas[-3:]):
+            return sigmas[-3][1], sigmas[-3][0]
     if all(s == 0 for _, s, _ in sigmas):
         return 0.0, 0
-    for (k, s, changes), (_, s1, _), (_, s2, _) in zip(sigmas, sigmas[1:], sigmas[2:]):
-        if k >= 2 and changes and s > 0 and s1 > 0 and s2 > 0 and \
-                0.25 <= s / s1 <= 4 and 0.25 <= s / s2 <= 4:
-            return s, k
     # No consistent order: the smallest spread seen bounds the noise from above.
     candidates = [item for item in sigmas if item[0] >= 2] or sigmas
     k, s, _ = min(candidates, key=lambda item: item[1])
     return s, k
+
+
+def _consistent(first, second, third) -> bool:
+    """Order k's sigma is the noise level: k >= 2, its differences change sign, and it
+    agrees within a factor 4 with the next two orders' (all nonzero)."""
+    (k, s, changes), (_, s1, _), (_, s2, _) = first, second, third
+    return k >= 2 and changes and s > 0 and s1 > 0 and s2 > 0 and \
+        0.25 <= s / s1 <= 4 and 0.25 <= s / s2 <= 4
 
 
 @dataclass

@@ -306,11 +306,15 @@ def memory_row(n):
     report = gk.compare_gradient(cost, x, gradient, method="central")
     gc.collect()
     kept, peak = tracemalloc.get_traced_memory()
+    checked = report.checked          # read from the columns: no Row object built yet
+    rows = report.rows                # builds (and keeps) one Row object per coordinate
+    with_rows = tracemalloc.get_traced_memory()[0]
     tracemalloc.stop()
     vector = 8 * n
     print(f"[memory] full central check, n={n:,}: peak {peak / vector:.1f} parameter vectors "
           f"(target <= 30), the report keeps {kept / vector:.1f} (target <= 20; "
-          f"{len(report.rows):,} rows)")
+          f"{checked:,} rows as columns; {with_rows / vector:.1f} once its {len(rows):,} Row "
+          "objects are built)")
 
 
 def tiny_row():
