@@ -143,6 +143,7 @@ def undecided(names, noise: float) -> str:
 
 def nothing_decided(rows: int) -> str:
     return (f"no coordinate could be decided: all {rows} are undecided (noisy), so nothing "
-            "was checked; make the cost deterministic and smooth at this point, or pass "
-            "allow_undecided=True to accept this")
+            "was checked; make the cost deterministic and smooth at this point (for a "
+            "rounded or quantized cost, give a step= long enough to cross its jumps), or "
+            "pass allow_undecided=True to accept this")
 

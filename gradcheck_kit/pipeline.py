@@ -25,8 +25,8 @@ from .hints import hints as mismatch_hints
 from .hints import uphill_hint
 from . import notes as say
 from .reevaluate import Reevaluation, remainder_along
-from .report import GradientReport, Row, outside_note
-from .tree import coordinate_name, entry_names, flatten, leaf_eps, rebuild
+from .report import GradientReport, RowColumns, outside_note
+from .tree import coordinate_name, flatten, leaf_eps, rebuild
 
 
 
@@ -53,6 +53,8 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
     lines = probes.measure_lines(runner, base, scale, f0,
                                  max(dtype_eps, float(np.max(leaf_eps(layout)))))
+    if lines.flat and not lines.quantized:
+        lines = _look_coarser(runner, lines, f0)
     eps_f, noisy, eps = probes.precision(lines, f0, runner.output_dtype, leaf_eps(layout))
     notes += say.lower_precision(runner.output_dtype,
                                  [leaf.name for leaf in layout.leaves if leaf.dtype != np.float64])
@@ -64,6 +66,24 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
         notes.append(say.noisy(lines.features.noise, eps_f))
     return Setup(runner, base, layout, f0, eps_f, eps, scale, lines.features, noisy, notes,
                  problems, lines)
+
+
+# A cost flat along the noise line is looked at again farther out, to these distances
+# (relative to each coordinate's scale): a rounded output (to 1e-3 or 1e-2, say) is flat at
+# the noise spacing, about 1e-6, but changes over a few hundredths or tenths.
+COARSE_SPACINGS = (2.0 ** -6, 2.0 ** -2)
+
+
+def _look_coarser(runner: CostRunner, lines, f0):
+    """A cost whose values did not change at all along the first noise line: eight more
+    points on each of two farther lines along the same direction.  Where they change,
+    the cost is piecewise constant at the stencils' scale (quantized); else (a cost that
+    does not depend on params, or is flat here) it is left as it was."""
+    for reach in COARSE_SPACINGS:
+        values = probes._line_values(runner, lines.direction, reach / 4, f0)
+        if values is not None and np.any(values != f0):
+            return replace(lines, quantized=True)
+    return lines
 
 
 def resolve_method(setup: Setup, method: str, seed, complex_safe=None) -> tuple:
@@ -186,6 +206,10 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
                                     est.noise)
     details = list(numeric.details)
     verdict = verdicts.apply_kinks(verdict, a, kinks, allowed, details)
+    if setup.lines is not None and setup.lines.quantized:
+        # A piecewise-constant cost flat over a whole stencil says nothing about the
+        # derivative: a zero there is not evidence for a zero gradient.
+        verdict = verdicts.mark_flat(verdict, numeric.values, setup.f0, details)
     if rtol is None and atol is None:
         # A quantized cost's jumps inflate the term scale: no value is negligible there.
         quantized = setup.lines is not None and setup.lines.quantized
@@ -237,22 +261,24 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
                    notes=notes)
 
 
-def rows_of(setup: Setup, comp: Comparison) -> list:
-    """The report's rows of the finished coordinates; names and numbers are computed a
-    column at a time (tree.entry_names), the Row objects once each."""
+def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
+    """The report's rows of the finished coordinates, as columns: the report builds
+    Row objects (names, index tuples) only when they are read."""
     num = comp.numeric
-    done = np.flatnonzero(num.done)
-    a = comp.analytic[num.coords][done]
-    n = num.estimates.derivative[done]
-    names, leaf_names, indices = entry_names(setup.layout, num.coords[done])
-    # One str object per verdict, shared by its rows (not one per row).
-    verdict = comp.verdict[done]
-    shared = {v: str(v) for v in np.unique(verdict).tolist()}
-    columns = zip(names, leaf_names, indices, num.coords[done].tolist(), a.tolist(),
-                  n.tolist(), np.abs(a - n).tolist(), verdicts.relative_error(a, n).tolist(),
-                  num.estimates.error[done].tolist(), [shared[v] for v in verdict.tolist()],
-                  [comp.details[j] for j in done.tolist()])
-    return [Row(*column) for column in columns]
+    done = num.done
+    at = np.cumsum(done) - 1      # each finished coordinate's row
+    details = {int(at[j]): d for j, d in enumerate(comp.details) if d != "" and done[j]}
+    coords = _finished(num.coords, done)
+    return RowColumns.from_arrays(setup.layout, coords, comp.analytic[coords],
+                                  _finished(num.estimates.derivative, done),
+                                  _finished(comp.verdict, done), details,
+                                  _finished(num.estimates.error, done))
+
+
+def _finished(values: np.ndarray, done: np.ndarray) -> np.ndarray:
+    """The entries of the finished coordinates: the array itself when all finished (a
+    view, where a full check would copy every column once more)."""
+    return values if done.all() else values[done]
 
 
 @interrupts_as_check_interrupted("gradient check")
@@ -401,8 +427,35 @@ def warn_if_long(runner: CostRunner, method: str, checked: int, total: int) -> l
     return [message]
 
 
+# What the signatures of plain functions say, by _signature_key: a test suite checks the
+# same cost many times, and inspect.signature cost more than a small check's evaluations.
+_SIGNATURE_FACTS: dict = {}
+
+
+def _signature_key(fun):
+    """What fixes a plain function's positional parameters (its code and how many
+    defaults it has); None for other callables (methods, partials, wrapped functions,
+    objects), whose signatures are read every time."""
+    if not inspect.isfunction(fun) or "__wrapped__" in fun.__dict__ or \
+            "__signature__" in fun.__dict__:
+        return None
+    return fun.__code__, len(fun.__defaults__ or ()), tuple(fun.__kwdefaults__ or ())
+
+
 def _required_positional(fun) -> int:
     """How many positional arguments `fun` requires (-1 where its signature is unknown)."""
+    key = _signature_key(fun)
+    if key is not None and key in _SIGNATURE_FACTS:
+        return _SIGNATURE_FACTS[key]
+    required = _count_required(fun)
+    if key is not None:
+        if len(_SIGNATURE_FACTS) >= 256:
+            _SIGNATURE_FACTS.clear()
+        _SIGNATURE_FACTS[key] = required
+    return required
+
+
+def _count_required(fun) -> int:
     try:
         parameters = inspect.signature(fun).parameters.values()
     except (TypeError, ValueError):
@@ -457,7 +510,8 @@ def _suggested_tolerances(setup: Setup, comp: Comparison, method: str) -> tuple:
     coords = comp.numeric.coords
     a, est = comp.analytic[coords], comp.numeric.estimates
     n = est.derivative
-    rtol_s, atol_s = verdicts.suggest_tolerances(a[done], n[done], comp.verdict[done])
+    rtol_s, atol_s = verdicts.suggest_tolerances(_finished(a, done), _finished(n, done),
+                                                 _finished(comp.verdict, done))
     if method == "central" or rtol_s is None:
         return rtol_s, atol_s, None, None
     s = setup.scale[coords]
@@ -491,8 +545,9 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
     with np.errstate(all="ignore"):
         own = verdicts.allowed_difference(a, n, est.error, terms=term_sizes(setup, comp.numeric),
                                           eps_f=setup.eps_f, eps_a=analytic_eps)
-    hints = mismatch_hints(setup.layout, coords[done], setup.base, a[done], n[done],
-                           comp.verdict[done], own[done], comp.kinks.found[done])
+    hints = mismatch_hints(setup.layout, _finished(coords, done), setup.base,
+                           _finished(a, done), _finished(n, done), _finished(comp.verdict, done),
+                           _finished(own, done), _finished(comp.kinks.found, done))
     notes = list(setup.notes) + list(notes) + list(comp.notes)
     problems = list(setup.problems) + list(problems)
     if analytic_eps is not None and analytic_eps > np.finfo(np.float64).eps:
@@ -500,15 +555,16 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
     if comp.numeric.undefined:
         notes.append(say.undefined_stencils([coordinate_name(setup.layout, c)
                                              for c in comp.numeric.undefined]))
-    kinked = [r.name for r in rows if r.verdict == "kink"]
+    kinked = rows.labels(np.flatnonzero(rows.coded(("kink",))))[0]
     if kinked:
         notes.append(say.on_kinks(kinked))
-    undecided = [r.name for r in rows if r.verdict == "noisy"]
+    undecided = rows.labels(np.flatnonzero(rows.coded(("noisy",))))[0]
     if undecided:
         notes.append(say.undecided(undecided, setup.line.noise))
-    if rows and len(undecided) == len(rows) and not allow_undecided:
+    if len(rows) and len(undecided) == len(rows) and not allow_undecided:
         problems.append(say.nothing_decided(len(rows)))
-    if any(r.failing for r in rows) and not setup.runner.interrupted:
+    any_failing = bool(rows.failing.any())
+    if any_failing and not setup.runner.interrupted:
         if probes.descent_uphill(setup.runner, comp.analytic, setup.scale, setup.f0,
                                  setup.line.noise, setup.eps_f):
             hints.append(uphill_hint())
@@ -517,14 +573,12 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
         probe = remainder_along(setup.runner, setup.base, setup.layout, setup.f0, setup.eps_f,
                                 setup.line.noise, comp.analytic, seed, analytic_eps)
         extra = {"remainder_order": probe.order, "remainder_passed": probe.passed}
-        outside_note(probe, len(rows), setup.layout.size, any(r.failing for r in rows),
-                     notes, problems)
-    return GradientReport(rows=rows, method=method, evaluations=setup.runner.evaluations,
-                          total=setup.layout.size, hints=hints, notes=notes,
-                          problems=problems, suggested_rtol=rtol_s,
-                          suggested_atol=atol_s, interrupted=setup.runner.interrupted,
-                          title=title, extra=extra, suggested_central_rtol=central_rtol,
-                          suggested_central_atol=central_atol)
+        outside_note(probe, len(rows), setup.layout.size, any_failing, notes, problems)
+    return GradientReport.from_columns(
+        rows, method=method, evaluations=setup.runner.evaluations, total=setup.layout.size,
+        hints=hints, notes=notes, problems=problems, suggested_rtol=rtol_s,
+        suggested_atol=atol_s, interrupted=setup.runner.interrupted, title=title, extra=extra,
+        suggested_central_rtol=central_rtol, suggested_central_atol=central_atol)
 
 
 @interrupts_as_check_interrupted("noise estimate")

@@ -139,6 +139,20 @@ def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -
     return verdict
 
 
+def mark_flat(verdict, values, f0, details) -> np.ndarray:
+    """'noisy' (undecided) where a quantized cost returned exactly f(x) at every point of
+    a row's stencil: the difference is zero whatever the gradient, so it decides nothing
+    (a step long enough to cross the cost's jumps, step=, can)."""
+    verdict = verdict.copy()
+    flat = np.all(values.real == f0, axis=1) & np.isin(verdict, ("agree", "disagree"))
+    for j in np.flatnonzero(flat):
+        verdict[j] = "noisy"
+        details[j] = ("the cost is constant over this stencil (piecewise constant at this "
+                      "scale): undecided; a step long enough to cross its jumps (step=) "
+                      "can decide")
+    return verdict
+
+
 # --- wording shared by the notes and the hints (gradcheck_kit/hints.py) ---------------
 def count(n: int, noun: str) -> str:
     """'1 coordinate', '3 coordinates'."""

@@ -216,3 +216,27 @@ def test_a_zero_gradient_at_an_inflection_agrees_and_a_small_error_there_is_caug
     assert right.passed and right.counts == {"agree": 3}, right
     wrong = gk.compare_gradient(cost, np.zeros(3), lambda x: x ** 2 + 1e-3, method=method)
     assert wrong.counts == {"disagree": 3}, wrong
+
+
+# --- a cost rounded so coarsely that every stencil is flat ---------------------------
+@pytest.mark.parametrize("quantum", [1e-3, 1e-2])
+def test_a_zero_gradient_of_a_coarsely_rounded_cost_does_not_pass(quantum):
+    # round(f / q) * q is flat over the automatic steps (about 1e-5) but not over a few
+    # hundredths: the noise line sees nothing, a coarser look sees the jumps, and a zero
+    # difference over a flat stencil is undecided, not evidence (common practice: a
+    # quantized output's derivative is zero almost everywhere).
+    def cost(v):
+        return float(np.round(np.sum(v ** 2) / quantum) * quantum)
+    x = np.array([0.3, -1.2, 0.7])
+    for gradient in (lambda v: 0 * v, lambda v: 2 * v):
+        report = gk.compare_gradient(cost, x, gradient)
+        assert not report.passed and report.counts == {"noisy": 3}, report
+        assert any("step=" in p for p in report.problems)
+    # a step that crosses the jumps decides: the zero gradient is then wrong
+    wrong = gk.compare_gradient(cost, x, lambda v: 0 * v, step=0.05, method="central")
+    assert wrong.counts == {"disagree": 3}
+
+
+def test_a_cost_that_does_not_depend_on_params_passes_a_zero_gradient():
+    report = gk.compare_gradient(lambda v: 3.0, np.array([0.3, -1.2]), lambda v: 0 * v)
+    assert report.passed and report.counts == {"agree": 2}
