@@ -9,12 +9,20 @@ evaluations for the first direction, four for each further one), and at the
 first step whose check fails it runs a per-coordinate check (gk.compare_gradient,
 or gk.locate_mismatches for large parameters) to name the wrong coordinates.
 
-Checked steps: every `every` steps, or (every=None) spread so that the time the
-monitor spends stays below `budget` times the time of the run it watches,
-measured as it goes (the first observed step is always checked).  Directions are
-drawn from a generator seeded by (seed, step), so a check is reproducible at a
-saved point; the caller's arrays are only read, and numpy's and Python's global
-random streams are set back after the cost has been called.
+Checked steps: every `every` steps, or (every=None) spread so that the monitor
+stays below `budget` times the run it watches, both in time (measured as it
+goes) and in evaluations (each observed step counting as one): the first
+observed step is always checked and charged, and a next check waits until the
+run has paid for everything spent so far plus the largest check seen.
+Directions are drawn from a generator seeded by (seed, step), so a check is
+reproducible at a saved point; the caller's arrays are only read, and numpy's,
+Python's and torch's global random streams are set back after the cost has been
+called.
+
+Params and g may hold torch tensors, a torch.nn.Module or JAX arrays: a check
+then runs on float64 numpy copies through the adapter of frameworks.py (the
+cost gets framework values at every call, gradient=None is the framework's own
+autodiff), and the caller's tensors, module state, .grad and modes are set back.
 """
 from __future__ import annotations
 
@@ -30,6 +38,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import CheckInputError
+from .frameworks import framework_of
 from .products import FAILING, ProbeError, check_seed, judge_along, random_direction, step_for
 from .report import write_atomically
 from .tree import coordinate_name, flatten, flatten_like, rebuild
@@ -96,13 +105,14 @@ class _Streams:
 class _Counted:
     """The cost, counting its calls (the monitor's evaluations)."""
 
-    def __init__(self, cost):
+    def __init__(self, cost, into=None):
         self.cost = cost
+        self.into = into if into is not None else self   # the counter the calls go to
         self.calls = 0
         self.__name__ = getattr(cost, "__name__", "cost")
 
     def __call__(self, params):
-        self.calls += 1
+        self.into.calls += 1
         return self.cost(params)
 
 
@@ -137,12 +147,14 @@ class GradientMonitor:
         params -> a scalar: the function the optimizer minimises.
     gradient : callable or None
         params -> gradient; used where observe() gets no g (and by `callback`).
-        None: autograd's gradient of `cost`.
+        None: autograd's gradient of `cost` (torch.autograd's or jax.grad's
+        when params hold framework values).
     every : int or None
         Check every that many steps; None spreads the checks so that the
-        monitor's time stays below `budget` times the run's.
+        monitor stays below `budget` times the run, in time and in evaluations.
     budget : float
-        The monitor's share of the run's time (0.05: 5%), measured as it goes.
+        The monitor's share of the run (0.05: 5%): of its time, measured as it
+        goes, and of its evaluations, each observed step counting as one.
     seed : int or None
         Seed of the random directions (with the step); None draws one, shown in
         the report.
@@ -185,7 +197,8 @@ class GradientMonitor:
         self._run_time = 0.0
         self._monitor_time = 0.0
         self._left_at = None
-        self._last_check_time = 0.0
+        self._largest_check_time = 0.0
+        self._largest_check_calls = 0
         self._last_checked = None
 
     # --- the optimizer's side -----------------------------------------------------
@@ -195,10 +208,12 @@ class GradientMonitor:
         Parameters
         ----------
         params : array, float, or a dict / list / tuple nest of those
-            The parameters at this step (only read; copied where kept).
+            The parameters at this step (only read; copied where kept).  Torch
+            tensors, a torch.nn.Module or JAX arrays (or nests of them) too.
         g : same structure as params, or None
             The gradient the optimizer uses here; None: `gradient(params)`,
-            computed only when a check is due.
+            computed only when a check is due.  For a module: the module itself
+            (its parameters' .grad is read) or a dict by parameter name.
         step : int or None
             The step number (increasing); None: one more than the last.
 
@@ -219,9 +234,12 @@ class GradientMonitor:
         row = None
         try:
             if self._due(step):
-                started = time.perf_counter()
+                started, spent = time.perf_counter(), self._spent()
                 row = self._check_step(params, g, step)
-                self._last_check_time = time.perf_counter() - started
+                self._largest_check_time = max(self._largest_check_time,
+                                               time.perf_counter() - started)
+                self._largest_check_calls = max(self._largest_check_calls,
+                                                self._spent() - spent)
         finally:
             self._left_at = time.perf_counter()
             self._monitor_time += self._left_at - arrived
@@ -266,11 +284,20 @@ class GradientMonitor:
             return True
         if self.every is not None:
             return step - self._last_checked >= self.every
-        return self._monitor_time + self._last_check_time <= self.budget * self._run_time
+        return budget_allows(self.budget, self._run_time, self._monitor_time,
+                             self._largest_check_time, self._spent(),
+                             self._largest_check_calls, self.steps_seen)
+
+    def _spent(self) -> int:
+        """The monitor's evaluations: cost calls, and gradients it computed itself."""
+        return self.cost.calls + self.gradient_calls
 
     # --- the check ------------------------------------------------------------------
     def _check_step(self, params, g, step) -> StepRow:
         self._last_checked = step
+        kind = framework_of(params)
+        if kind is not None:
+            return self._check_framework_step(kind, params, g, step)
         base, layout = flatten(params)
         from_function = g is None
         with _Streams():
@@ -279,20 +306,52 @@ class GradientMonitor:
             g_flat = flatten_like(g, layout, "g")
             row = check_point(self.cost, base, layout, g_flat, step, self.seed,
                               self.directions)
-        self.rows.append(row)
-        if row.failing and self.saved is None:
-            self.saved = SavedPoint(step, rebuild(base.copy(), layout),
-                                    rebuild(g_flat.copy(), layout), self.cost.cost,
-                                    self.gradient, from_function, self.seed, self.directions,
-                                    row.verdict)
-            if self.name_coordinates:
-                with _Streams():
-                    try:
-                        self.coordinate_report = self.saved.compare(counted=self.cost)
-                    except CheckInputError as exc:
-                        self.notes.append(f"the per-coordinate check at step {step} could "
-                                          f"not run: {exc}")
+            self._record(row, base, layout, g_flat, from_function, self.cost, None)
         return row
+
+    def _check_framework_step(self, kind, params, g, step) -> StepRow:
+        """The check on float64 numpy copies of torch / JAX values (frameworks.adapt): the
+        cost is called on framework values, gradient=None is the framework's autodiff, and
+        the caller's tensors, modules (their state, modes, .grad) and random streams are
+        set back as they were."""
+        from .frameworks import ModuleGuard, adapt
+
+        from_function = g is None
+        with ModuleGuard(params) as guard, _Streams():
+            analytic = self.gradient if from_function else _observed_gradient(g)
+            try:   # the counted cost: adapt's own call at the base point is the monitor's too
+                adapted = adapt(kind, _Counted(self.cost.cost, into=self.cost), params,
+                                analytic, scalar=True, analytic_name="gradient",
+                                keep_precision=False, options={})
+            except CheckInputError as exc:
+                raise CheckInputError(f"observe at step {step}: {exc}") from exc
+            if from_function:
+                self.gradient_calls += 1
+            base, layout = flatten(adapted.params)
+            g_flat = flatten_like(adapted.analytic, layout, "g")
+            row = check_point(adapted.cost, base, layout, g_flat, step, self.seed,
+                              self.directions)
+            self._record(row, base, layout, g_flat, from_function, adapted.cost, kind)
+        for note in adapted.notes + guard.notes:
+            if note not in self.notes:
+                self.notes.append(note)
+        return row
+
+    def _record(self, row, base, layout, g_flat, from_function, counted, framework):
+        self.rows.append(row)
+        if not row.failing or self.saved is not None:
+            return
+        self.saved = SavedPoint(row.step, rebuild(base.copy(), layout),
+                                rebuild(g_flat.copy(), layout), self.cost.cost,
+                                self.gradient, from_function, self.seed, self.directions,
+                                row.verdict, framework=framework,
+                                engine_cost=counted if framework else None)
+        if self.name_coordinates:
+            try:
+                self.coordinate_report = self.saved.compare(counted=counted)
+            except CheckInputError as exc:
+                self.notes.append(f"the per-coordinate check at step {row.step} could "
+                                  f"not run: {exc}")
 
     def _gradient_at(self, base, layout):
         self.gradient_calls += 1
@@ -330,6 +389,70 @@ class GradientMonitor:
                              every=self.every, overhead=overhead, seed=self.seed,
                              directions=self.directions, monitor_time=self._monitor_time,
                              run_time=self._run_time, notes=list(self.notes))
+
+
+def budget_allows(budget, run_time, monitor_time, check_time, spent, check_spent,
+                  steps) -> bool:
+    """Whether one more check keeps the monitor within its budget, in time and in
+    evaluations, counting everything it has spent so far (the first check included,
+    so the next check waits until the run has paid it back).
+
+    The next check is taken to cost as much as the largest one seen (a check that
+    meets a mismatch retries its steps).  In evaluations, each observed step counts
+    as one evaluation of the run: the step computed a gradient, and a gradient
+    costs at least one cost evaluation (reverse mode costs a small multiple of one:
+    common practice), so the share in evaluations is an upper bound.
+
+    Parameters
+    ----------
+    budget : float
+        The monitor's share of the run (0.05: 5%).
+    run_time, monitor_time, check_time : float
+        Seconds spent by the run outside the monitor, by the monitor, and by its
+        largest check.
+    spent, check_spent : int
+        Cost evaluations and gradients spent by the monitor, and by its largest check.
+    steps : int
+        Steps observed.
+
+    Returns
+    -------
+    bool
+
+    Examples
+    --------
+    >>> budget_allows(0.05, 10.0, 0.2, 0.1, 9, 9, 400)   # 18 of 5% of 400 steps
+    True
+    >>> budget_allows(0.05, 10.0, 0.2, 0.1, 9, 9, 300)   # 18 > 15: not paid back yet
+    False
+    >>> budget_allows(0.05, 1.0, 0.05, 0.01, 9, 9, 900)  # 6% of the run's time
+    False
+    """
+    if monitor_time + check_time > budget * run_time:
+        return False
+    return spent + check_spent <= budget * steps
+
+
+def _observed_gradient(g):
+    """g as framework values the adapter reads: a torch module stands for the .grad of
+    its trainable parameters (a dict by name), copied."""
+    torch = sys.modules.get("torch")
+    if torch is not None and isinstance(g, torch.nn.Module):
+        out = {}
+        for name, p in g.named_parameters():
+            if not p.requires_grad:
+                continue
+            if p.grad is None:
+                raise CheckInputError(
+                    f"g: the module's parameter '{name}' has no .grad; call backward() on the "
+                    "loss before observe(), or pass g=None for torch.autograd's gradient")
+            out[name] = p.grad.detach().clone()
+        return out
+    if isinstance(g, dict):
+        return type(g)((k, _observed_gradient(v)) for k, v in g.items())
+    if isinstance(g, (list, tuple)) and not hasattr(g, "_fields"):
+        return type(g)(_observed_gradient(v) for v in g)
+    return g
 
 
 def _cost_value(cost, params, label):
@@ -473,6 +596,8 @@ class SavedPoint:
     seed: int = 0
     directions: int = DEFAULT_DIRECTIONS
     verdict: str = "disagree"
+    framework: str | None = None   # 'torch' / 'jax': params are numpy copies of those values
+    engine_cost: object = field(default=None, repr=False)   # the cost on those numpy copies
 
     def recheck(self) -> StepRow:
         """The same directional check again at this point (the same directions).
@@ -483,8 +608,9 @@ class SavedPoint:
         """
         base, layout = flatten(self.params)
         g_flat = flatten_like(self.gradient_values, layout, "gradient")
+        cost = self.engine_cost if self.engine_cost is not None else self.cost
         with _Streams():
-            return check_point(self.cost, base, layout, g_flat, self.step, self.seed,
+            return check_point(cost, base, layout, g_flat, self.step, self.seed,
                                self.directions)
 
     def compare(self, counted=None, **options):
@@ -507,7 +633,8 @@ class SavedPoint:
         from .locate import locate_mismatches
         from .pipeline import compare_gradient
 
-        cost = counted if counted is not None else self.cost
+        cost = counted if counted is not None else (
+            self.engine_cost if self.engine_cost is not None else self.cost)
         base, layout = flatten(self.params)
         options.setdefault("seed", self.seed)
         if layout.size <= FULL_CHECK_UP_TO:
@@ -566,6 +693,11 @@ class SavedPoint:
             and `cost` does not name it.
         """
         path = Path(path)
+        if self.framework is not None:
+            raise CheckInputError(f"write_case: the point holds numpy copies of {self.framework} "
+                                  "values, which the monitored cost does not take; write them "
+                                  "with write_npz(path) and declare the case in your own "
+                                  "framework code")
         if path.suffix != ".py":
             raise CheckInputError(f"path: expected a .py file for the case module, got "
                                   f"{path.name}")

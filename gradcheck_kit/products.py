@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import CheckInputError
+from .frameworks import framework_of
 from .report import GradientReport, Row, render_text
 from .tree import assemble, coordinate_name, flatten, flatten_like, rebuild
 
@@ -604,9 +605,13 @@ def compare_jvp(fun, params, jvp=None, *, probes=DEFAULT_PROBES, seed=None, rtol
     fun : callable
         params -> an array, a number or a dict / list / tuple nest of those.
     params : array, float, or a dict / list / tuple nest of those
+        Or torch tensors, a torch.nn.Module, JAX arrays (or nests of them): then
+        fun and jvp get framework values (v too; a module's v is a dict by
+        parameter name) and the check runs on float64 copies.
     jvp : callable or None
         jvp(params, v) -> J v, shaped like fun's output; v is shaped like params.
-        None: autograd's forward product of `fun`.
+        None: autograd's forward product of `fun` (torch.autograd's or jax.jvp's
+        for framework values).
     probes : int
         Random directions v tried (one report row each); 4 evaluations each, and 8
         more for a direction that disagrees.
@@ -635,6 +640,10 @@ def compare_jvp(fun, params, jvp=None, *, probes=DEFAULT_PROBES, seed=None, rtol
     ...             lambda x, v: (1 - np.tanh(A @ x) ** 2) * (A @ v), seed=0).passed
     True
     """
+    kind = framework_of(params)
+    if kind is not None:
+        return _on_framework(compare_jvp, "jvp", kind, fun, params, jvp,
+                             dict(probes=probes, seed=seed, rtol=rtol, atol=atol))
     setup, probes, rng, rtol, atol = _start(fun, params, "fun", probes, seed, rtol, atol)
     y0 = setup.at_base()
     outputs = _Outputs(y0)
@@ -686,9 +695,12 @@ def compare_vjp(fun, params, vjp=None, *, probes=DEFAULT_PROBES, seed=None, rtol
     fun : callable
         params -> an array, a number or a dict / list / tuple nest of those.
     params : array, float, or a dict / list / tuple nest of those
+        Or framework values, as in compare_jvp (u then reaches vjp as float64
+        framework values).
     vjp : callable or None
         vjp(params, u) -> u^T J, shaped like params; u is shaped like fun's output.
-        None: autograd's reverse product of `fun`.
+        None: autograd's reverse product of `fun` (torch.autograd's, through any
+        custom backward, or jax.vjp's for framework values).
     probes : int
         Random pairs (u, v) tried, one report row each.
     seed : int or None
@@ -710,6 +722,10 @@ def compare_vjp(fun, params, vjp=None, *, probes=DEFAULT_PROBES, seed=None, rtol
     >>> compare_vjp(lambda x: A @ x, np.array([0.2, 0.1]), lambda x, u: u @ A, seed=0).passed
     True
     """
+    kind = framework_of(params)
+    if kind is not None:
+        return _on_framework(compare_vjp, "vjp", kind, fun, params, vjp,
+                             dict(probes=probes, seed=seed, rtol=rtol, atol=atol))
     setup, probes, rng, rtol, atol = _start(fun, params, "fun", probes, seed, rtol, atol)
     y0 = setup.at_base()
     outputs = _Outputs(y0)
@@ -766,9 +782,11 @@ def compare_hvp(cost, params, hvp=None, *, gradient=None, probes=DEFAULT_PROBES,
     cost : callable
         params -> a scalar.
     params : array, float, or a dict / list / tuple nest of those
+        Or framework values, as in compare_jvp.
     hvp : callable or None
         hvp(params, v) -> H v, shaped like params; v is shaped like params.
-        None: autograd's Hessian-vector product of `cost`.
+        None: autograd's Hessian-vector product of `cost` (torch.autograd's
+        double backward, or jax.jvp of jax.grad, for framework values).
     gradient : callable or None
         The gradient whose differences stand for H v; None: autograd's gradient
         of `cost`.  (Check it first: a wrong gradient makes a right H v disagree.)
@@ -803,6 +821,10 @@ def compare_hvp(cost, params, hvp=None, *, gradient=None, probes=DEFAULT_PROBES,
     if gradient is not None and not callable(gradient):
         raise CheckInputError(f"gradient: expected a function of params or None, got "
                               f"{type(gradient).__name__}")
+    kind = framework_of(params)
+    if kind is not None:
+        return _on_framework(compare_hvp, "hvp", kind, cost, params, hvp,
+                             dict(probes=probes, seed=seed, rtol=rtol, atol=atol), gradient)
     probe_setup = _Setup(cost, params, "cost")
     grad_fun = gradient if gradient is not None else _autograd_gradient(cost, probe_setup)
     setup, probes, rng, rtol, atol = _start(grad_fun, params, "gradient", probes, seed, rtol,
@@ -939,4 +961,336 @@ def _autograd_hvp(cost, setup):
             raise CheckInputError(f"hvp=None: autograd could not differentiate the cost "
                                   f"({type(exc).__name__}: {exc}); pass hvp=") from exc
         return rebuild(np.asarray(value, dtype=float), layout)
+    return product
+
+
+# --- framework values: PyTorch tensors / modules and JAX arrays ------------------------------
+#
+# The engine above works on numpy trees.  A check whose params hold torch or JAX values runs
+# on float64 numpy copies (frameworks.TorchBridge / JaxBridge, the bridges of the public
+# entries): the function and the product are called with framework values built from each
+# numpy point, a product's second argument (v, or u for a vjp) as framework values too, and
+# what they return is read back as numpy.  `takes_framework_values` does not fit here: it
+# treats the third argument as a gradient of params alone (called with one argument, or a
+# value) and a non-Jacobian entry as a scalar cost, while a product takes two arguments and
+# jvp / vjp functions return vectors.
+
+def _on_framework(entry, which, kind, fun, params, product, options, gradient=None):
+    """Run `entry` (compare_jvp / compare_vjp / compare_hvp) on numpy views of framework
+    values; the caller's tensors and modules are only read (a ModuleGuard sets back what a
+    function changed in place, with a note)."""
+    from .frameworks import ModuleGuard
+
+    what = "cost" if which == "hvp" else "fun"
+    if not callable(fun):
+        raise CheckInputError(f"{what}: expected a callable taking params, got "
+                              f"{type(fun).__name__}")
+    if product is not None and not callable(product):
+        raise CheckInputError(f"{which}: expected a function {which}(params, "
+                              f"{'u' if which == 'vjp' else 'v'}) or None, got "
+                              f"{type(product).__name__}")
+    if gradient is not None and not callable(gradient):
+        raise CheckInputError(f"gradient: expected a function of params or None, got "
+                              f"{type(gradient).__name__}")
+    with ModuleGuard(params) as guard:
+        view = _FrameworkView(kind, params, fun)
+        numpy_product = view.default(which, fun) if product is None else \
+            view.product(product, which)
+        more = {"gradient": view.gradient(fun, gradient)} if which == "hvp" else {}
+        report = entry(view.call_with(fun), view.params, numpy_product, **more, **options)
+    notes = _framework_notes(view.bridge)
+    if not view.bridge.widen:   # the engine's note on float64 leaves does not hold here
+        report.notes = [n for n in report.notes if "are stored in lower precision" not in n]
+    if product is None:
+        notes.append(f"{which}=None: the product is {view.tool(which)}'s, through any custom "
+                     "derivative rule the function uses")
+    report.notes[:0] = notes + view.notes + list(view.bridge.notes) + guard.notes
+    report.evaluations += view.probe_calls
+    return report
+
+
+def _framework_notes(bridge) -> list:
+    from .frameworks import _listed
+
+    notes = []
+    if bridge.widened and bridge.widen:
+        notes.append(f"{bridge.framework} values in lower precision ({_listed(bridge.widened)}) "
+                     "were checked on float64 copies")
+    elif not bridge.widen:
+        notes.append("the points along each direction are rounded to the params' own dtypes "
+                     "before each call")
+    if bridge.narrowed:
+        notes.append(f"bfloat16 values ({_listed(bridge.narrowed)}) were checked in float32")
+    if bridge.on_devices:
+        notes.append(f"params on {', '.join(sorted(bridge.on_devices))} were checked there")
+    return notes
+
+
+class _FrameworkView:
+    """numpy callables standing for a user's framework function and product."""
+
+    def __init__(self, kind, params, fun):
+        from .frameworks import JaxBridge, TorchBridge
+
+        self.kind, self.probe_calls, self.notes = kind, 0, []
+        make = TorchBridge if kind == "torch" else JaxBridge
+        self.bridge = make(params, widen=True)
+        if self.bridge.widened and not self._runs(fun):
+            # float32 data inside the function refuses float64 copies: check in the
+            # params' own precision (as the other entries do), with a note
+            self.bridge = make(params, widen=False)
+            self.notes.append("the function fails on float64 copies of params, so it was "
+                              "checked in the params' own precision, where agreement means "
+                              "less; give its data the dtype of params for a float64 check")
+        self.params = self.bridge.params      # numpy copies, the engine's tree
+
+    def _runs(self, fun) -> bool:
+        self.probe_calls += 1
+        try:
+            self._run(fun, self.bridge.params)
+        except Exception:  # noqa: BLE001 - user code; the engine reports it if it stays
+            return False
+        return True
+
+    def leaves(self, numpy_tree, requires_grad=False):
+        """Framework leaves of a params-shaped numpy tree, in the working precision (the
+        engine's points are float64; a check in own precision casts them back)."""
+        bridge = self.bridge
+        if self.kind == "torch":
+            out = bridge.tensors(numpy_tree)
+            if not bridge.widen:
+                out = [t.to(d) if d is not None and t.is_floating_point() else t
+                       for t, d in zip(out, bridge.own_dtypes)]
+            return [t.detach().requires_grad_(True) if requires_grad else t for t in out]
+        out = bridge.arrays(numpy_tree)
+        if not bridge.widen:
+            out = [a if d is None else a.astype(d) for a, d in zip(out, bridge.own_dtypes)]
+        return out
+
+    # calls ------------------------------------------------------------------------------
+    def _x64(self):
+        import contextlib
+
+        if self.kind == "torch":
+            return contextlib.nullcontext()
+        from .frameworks import _x64
+        return _x64(__import__("jax"))
+
+    def _shaped_like_params(self, numpy_tree):
+        """A params-shaped numpy tree (v) as framework values (a module's part a dict by
+        parameter name), float64, on the params' devices."""
+        from .frameworks import _rebuild_numpy
+
+        return _rebuild_numpy(numpy_tree, self.leaves(numpy_tree))
+
+    def _plain(self, numpy_tree):
+        """Any numpy tree (u, shaped like the outputs) as float64 framework values."""
+        from .frameworks import _rebuild_numpy
+        from .tree import leaves_of
+
+        if self.kind == "torch":
+            torch = self.bridge.torch
+            values = [torch.from_numpy(np.array(x, dtype=np.float64)) for x in
+                      leaves_of(numpy_tree)]
+        else:
+            import jax.numpy as jnp
+            values = [jnp.asarray(np.array(x, dtype=np.float64)) for x in leaves_of(numpy_tree)]
+        return _rebuild_numpy(numpy_tree, values)
+
+    def _run(self, fn, numpy_tree, rest=()):
+        from .frameworks import _arrays, _settled
+
+        with self._x64():
+            if self.kind == "torch":
+                out = self.bridge.run(fn, self.leaves(numpy_tree), rest)
+            else:
+                out = _settled(fn(self.bridge.assemble(self.leaves(numpy_tree)), *rest))
+            return _arrays(out)
+
+    def call_with(self, fun):
+        def numpy_fun(numpy_tree):
+            return self._run(fun, numpy_tree)
+        numpy_fun.__name__ = getattr(fun, "__name__", "fun")
+        return numpy_fun
+
+    def product(self, product, which):
+        def numpy_product(numpy_tree, second):
+            with self._x64():
+                other = self._plain(second) if which == "vjp" else \
+                    self._shaped_like_params(second)
+                return self._run(product, numpy_tree, (other,))
+        return numpy_product
+
+    def gradient(self, cost, gradient):
+        from .frameworks import _arrays
+
+        if gradient is None:
+            return self.default("gradient", cost)
+
+        def numpy_gradient(numpy_tree):
+            with self._x64():
+                leaves = self.leaves(numpy_tree, requires_grad=self.kind == "torch")
+                if self.kind == "torch":
+                    with self.bridge.torch.enable_grad():
+                        return _arrays(self.bridge.run(gradient, leaves))
+                return _arrays(gradient(self.bridge.assemble(leaves)))
+        return numpy_gradient
+
+    # the framework's own products -------------------------------------------------------------
+    def tool(self, which) -> str:
+        if self.kind == "torch":
+            return "torch.autograd"
+        return {"jvp": "jax.jvp", "vjp": "jax.vjp", "hvp": "jax.jvp of jax.grad",
+                "gradient": "jax.grad"}[which]
+
+    def default(self, which, fun):
+        make = {("torch", "jvp"): _torch_jvp, ("torch", "vjp"): _torch_vjp,
+                ("torch", "hvp"): _torch_hvp, ("torch", "gradient"): _torch_gradient,
+                ("jax", "jvp"): _jax_jvp, ("jax", "vjp"): _jax_vjp, ("jax", "hvp"): _jax_hvp,
+                ("jax", "gradient"): _jax_gradient}[(self.kind, which)]
+        product = make(self, fun)
+        what = "fun" if which in ("jvp", "vjp") else "the cost"
+
+        def numpy_product(numpy_tree, *second):
+            try:
+                with self._x64():
+                    return product(numpy_tree, *second)
+            except CheckInputError:
+                raise
+            except Exception as exc:
+                raise CheckInputError(f"{which}=None: {self.tool(which)} could not "
+                                      f"differentiate {what} ({type(exc).__name__}: {exc}); "
+                                      f"pass {which}=") from exc
+        return numpy_product
+
+
+def _torch_flat(torch, out):
+    from .tree import leaves_of
+
+    return torch.cat([torch.as_tensor(y).reshape(-1) for y in leaves_of(out)])
+
+
+def _numpy_of(tensor, like):
+    return np.zeros(np.shape(like)) if tensor is None else \
+        np.asarray(tensor.detach().cpu().numpy(), dtype=np.float64)
+
+
+def _torch_jvp(view, fun):
+    bridge, torch = view.bridge, view.bridge.torch
+
+    def product(numpy_tree, v):
+        leaves, tangents = view.leaves(numpy_tree), view.leaves(v)
+
+        def flat(*xs):
+            return _torch_flat(torch, bridge.run(fun, list(xs)))
+        with torch.enable_grad():   # the double-backward form: custom backward rules count
+            _, out = torch.autograd.functional.jvp(flat, tuple(leaves), tuple(tangents))
+        return _numpy_of(out, None)
+    return product
+
+
+def _torch_vjp(view, fun):
+    from .frameworks import _rebuild_numpy
+
+    bridge, torch = view.bridge, view.bridge.torch
+
+    def product(numpy_tree, u):
+        leaves = view.leaves(numpy_tree, requires_grad=True)
+        with torch.enable_grad():
+            out = _torch_flat(torch, bridge.run(fun, leaves))
+            weights = torch.from_numpy(np.array(_flat_output_numpy(u), dtype=np.float64))
+            grads = torch.autograd.grad(out, leaves, grad_outputs=weights.to(out.dtype),
+                                        allow_unused=True) if out.requires_grad else \
+                [None] * len(leaves)
+        return _rebuild_numpy(numpy_tree, [_numpy_of(g, x) for g, x in
+                                           zip(grads, _leaf_values(numpy_tree))])
+    return product
+
+
+def _torch_gradient(view, cost):
+    """The gradient as the vjp of a scalar cost with u = 1 (through any custom backward)."""
+    vjp = _torch_vjp(view, cost)
+    return lambda numpy_tree: vjp(numpy_tree, 1.0)
+
+
+def _torch_hvp(view, cost):
+    from .frameworks import _rebuild_numpy
+
+    bridge, torch = view.bridge, view.bridge.torch
+
+    def product(numpy_tree, v):
+        leaves, tangents = view.leaves(numpy_tree, requires_grad=True), view.leaves(v)
+        hv = [None] * len(leaves)
+        with torch.enable_grad():
+            out = bridge.run(cost, leaves)
+            grads = torch.autograd.grad(out.reshape(()), leaves, create_graph=True,
+                                        allow_unused=True)
+            pairs = [(g, t) for g, t in zip(grads, tangents) if g is not None and g.requires_grad]
+            if pairs:   # d/dx of sum_i g_i . t_i is H t (H symmetric)
+                hv = torch.autograd.grad([g for g, _ in pairs], leaves,
+                                         grad_outputs=[t.to(g.dtype) for g, t in pairs],
+                                         allow_unused=True)
+        return _rebuild_numpy(numpy_tree, [_numpy_of(h, x) for h, x in
+                                           zip(hv, _leaf_values(numpy_tree))])
+    return product
+
+
+def _jax_flat(bridge, fun):
+    import jax.numpy as jnp
+
+    from .tree import leaves_of
+
+    return lambda xs: jnp.concatenate([jnp.ravel(y) for y in leaves_of(fun(bridge.assemble(xs)))])
+
+
+def _jax_jvp(view, fun):
+    import jax
+
+    def product(numpy_tree, v):
+        _, out = jax.jvp(_jax_flat(view.bridge, fun), (view.leaves(numpy_tree),),
+                         (view.leaves(v),))
+        return np.asarray(out, dtype=np.float64)
+    return product
+
+
+def _jax_vjp(view, fun):
+    import jax
+    import jax.numpy as jnp
+
+    from .frameworks import _rebuild_numpy
+
+    def product(numpy_tree, u):
+        out, back = jax.vjp(_jax_flat(view.bridge, fun), view.leaves(numpy_tree))
+        (grads,) = back(jnp.asarray(np.array(_flat_output_numpy(u), dtype=np.float64),
+                                    dtype=out.dtype))
+        return _rebuild_numpy(numpy_tree, [np.asarray(g, dtype=np.float64) for g in grads])
+    return product
+
+
+def _jax_scalar(bridge, cost):
+    import jax.numpy as jnp
+
+    return lambda xs: jnp.reshape(cost(bridge.assemble(xs)), ())
+
+
+def _jax_gradient(view, cost):
+    import jax
+
+    from .frameworks import _rebuild_numpy
+
+    def gradient(numpy_tree):
+        grads = jax.grad(_jax_scalar(view.bridge, cost))(view.leaves(numpy_tree))
+        return _rebuild_numpy(numpy_tree, [np.asarray(g, dtype=np.float64) for g in grads])
+    return gradient
+
+
+def _jax_hvp(view, cost):
+    import jax
+
+    from .frameworks import _rebuild_numpy
+
+    def product(numpy_tree, v):
+        _, hv = jax.jvp(jax.grad(_jax_scalar(view.bridge, cost)), (view.leaves(numpy_tree),),
+                        (view.leaves(v),))
+        return _rebuild_numpy(numpy_tree, [np.asarray(h, dtype=np.float64) for h in hv])
     return product
