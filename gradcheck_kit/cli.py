@@ -534,7 +534,7 @@ def _figure_suffixes() -> set:
 
 def _check_outputs(args) -> None:
     """Refuse, before any import or evaluation, outputs that could not be written."""
-    if args.json:
+    if args.json is not None:     # --json '' (an unset variable) is refused, not skipped
         check_writable(args.json, "--json")
     if getattr(args, "plot", None):
         check_writable(args.plot, "--plot", _figure_suffixes())
@@ -814,7 +814,7 @@ def _run_cases(args, run: _Run, importer: _Importer) -> None:
 
 def _write_outputs(args, run: _Run) -> None:
     """The --json document (also after an interrupt), then the figures (not after one)."""
-    if args.json:
+    if args.json is not None:
         run.doing = "writing the JSON report"
         try:
             write_atomically(args.json,
