@@ -324,6 +324,13 @@ def load_params(path, what: str = "--params"):
     if p.suffix.lower() not in PARAMS_SUFFIXES:
         raise ParamsFileError(f"{what}: expected a .npz or .npy file (or a PyTorch .pt), "
                               f"got {p.name}")
+    # numpy takes any file without its own header for a pickle: say what the file is not.
+    magic = {".npy": b"\x93NUMPY", ".npz": b"PK"}[p.suffix.lower()]
+    with open(p, "rb") as handle:
+        if not handle.read(len(magic)) == magic:
+            raise ParamsFileError(f"{what}: {given} is not a numpy {p.suffix.lower()} file "
+                                  "(its header is missing); save arrays with numpy.save or "
+                                  "numpy.savez")
     try:
         loaded = np.load(p, allow_pickle=False)
         if p.suffix.lower() == ".npy":

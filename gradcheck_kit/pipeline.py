@@ -1,8 +1,9 @@
-"""The pipeline: params -> tree -> plan -> evaluate -> stencils -> probes -> verdicts -> report.
+"""The pipeline: params -> tree -> plan -> evaluate -> stencils -> probes -> numeric ->
+verdicts -> hints / notes -> report.
 
-The public checks (`numeric_gradient`, `compare_gradient`, `estimate_noise`) run
-the stages in that order; this module wires them and computes no numerics of
-its own beyond choosing what to evaluate next.
+The public checks (`numeric_gradient`, `compare_gradient`, `estimate_noise`) run the
+stages in that order; this module wires them (and holds the entries' option handling):
+numerics live in the stages, sentences in notes.py.
 """
 from __future__ import annotations
 
@@ -13,21 +14,19 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from . import notes as say
 from . import plan, probes, stencils, verdicts
-from .numeric import Numeric, numeric_derivatives, term_sizes
 from .analytic import analytic_values
 from .errors import CheckInputError, LongCheckWarning, interrupts_as_check_interrupted
 from .evaluate import CostRunner, SeededCall, draw_seed
 from .frameworks import takes_framework_values
-from .probes import Setup
-from .hints import central_error, central_tolerances
+from .hints import central_error, central_tolerances, uphill_hint
 from .hints import hints as mismatch_hints
-from .hints import uphill_hint
-from . import notes as say
+from .numeric import Numeric, numeric_derivatives, term_sizes
+from .probes import Setup
 from .reevaluate import Reevaluation, remainder_along
 from .report import GradientReport, RowColumns, outside_note
 from .tree import coordinate_name, flatten, leaf_eps, rebuild
-
 
 
 def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
@@ -54,7 +53,7 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
     lines = probes.measure_lines(runner, base, scale, f0,
                                  max(dtype_eps, float(np.max(leaf_eps(layout)))))
     if lines.flat and not lines.quantized:
-        lines = _look_coarser(runner, lines, f0)
+        lines = probes.look_coarser(runner, lines, f0)
     eps_f, noisy, eps = probes.precision(lines, f0, runner.output_dtype, leaf_eps(layout))
     notes += say.lower_precision(runner.output_dtype,
                                  [leaf.name for leaf in layout.leaves if leaf.dtype != np.float64])
@@ -66,24 +65,6 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
         notes.append(say.noisy(lines.features.noise, eps_f))
     return Setup(runner, base, layout, f0, eps_f, eps, scale, lines.features, noisy, notes,
                  problems, lines)
-
-
-# A cost flat along the noise line is looked at again farther out, to these distances
-# (relative to each coordinate's scale): a rounded output (to 1e-3 or 1e-2, say) is flat at
-# the noise spacing, about 1e-6, but changes over a few hundredths or tenths.
-COARSE_SPACINGS = (2.0 ** -6, 2.0 ** -2)
-
-
-def _look_coarser(runner: CostRunner, lines, f0):
-    """A cost whose values did not change at all along the first noise line: eight more
-    points on each of two farther lines along the same direction.  Where they change,
-    the cost is piecewise constant at the stencils' scale (quantized); else (a cost that
-    does not depend on params, or is flat here) it is left as it was."""
-    for reach in COARSE_SPACINGS:
-        values = probes._line_values(runner, lines.direction, reach / 4, f0)
-        if values is not None and np.any(values != f0):
-            return replace(lines, quantized=True)
-    return lines
 
 
 def resolve_method(setup: Setup, method: str, seed, complex_safe=None) -> tuple:

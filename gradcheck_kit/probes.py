@@ -10,7 +10,7 @@ Each returns values; none changes what it was given.
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -131,6 +131,24 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
     quantized = any(stencils.looks_quantized(values) for values, _ in seen)
     flat = bool(np.all(seen[0][0] == f0))
     return Lines(features, quantized, flat, undefined, v1)
+
+
+# A cost flat along the noise line is looked at again farther out, to these distances
+# (relative to each coordinate's scale): a rounded output (to 1e-3 or 1e-2, say) is flat at
+# the noise spacing, about 1e-6, but changes over a few hundredths or tenths.
+COARSE_SPACINGS = (2.0 ** -6, 2.0 ** -2)
+
+
+def look_coarser(runner: CostRunner, lines: Lines, f0: float) -> Lines:
+    """A cost whose values did not change at all along the first noise line: eight more
+    points on each of two farther lines along the same direction.  Where they change,
+    the cost is piecewise constant at the stencils' scale (quantized); else (a cost that
+    does not depend on params, or is flat here) it is left as it was."""
+    for reach in COARSE_SPACINGS:
+        values = _line_values(runner, lines.direction, reach / 4, f0)
+        if values is not None and np.any(values != f0):
+            return replace(lines, quantized=True)
+    return lines
 
 
 def relative_precision(dtype, noise: float, size: float) -> float:

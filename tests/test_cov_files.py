@@ -115,9 +115,6 @@ def test_a_damaged_npz_file_says_it_cannot_be_read(tmp_path):
     assert str(info.value).startswith(f"params file: cannot read {path}: ")
 
 
-@pytest.mark.xfail(strict=True, reason="numpy reads a file without the .npy header as a "
-                   "pickle, so plain text saved as .npy is reported as 'pickled Python "
-                   "objects' instead of as a file that is not an array file")
 def test_a_text_file_named_npy_is_not_called_a_pickle(tmp_path):
     path = tmp_path / "weights.npy"
     path.write_text("0.5 1.5 2.5\n")
