@@ -27,6 +27,7 @@ backend is never switched and no window opens.
 from __future__ import annotations
 
 import math
+import textwrap
 
 import numpy as np
 
@@ -245,7 +246,10 @@ def plot_report(report, path, *, sweep=True, remainder=True):
     panels = _panels(report, sweep, remainder)
     ncols = max(1, min(len(panels), 3))
     nrows = max(1, math.ceil(len(panels) / ncols))
-    fig = Figure(figsize=(5.5 * ncols, 4.2 * nrows + 0.4), layout="constrained")
+    # A figure with no panels holds only text: a constrained layout has nothing to lay out
+    # (and matplotlib warns that it could not apply it).
+    fig = Figure(figsize=(5.5 * ncols, 4.2 * nrows + 0.4),
+                 layout="constrained" if panels else None)
     for k, (kind, data) in enumerate(panels):
         ax = fig.add_subplot(nrows, ncols, k + 1)
         if kind == "map":
@@ -260,11 +264,17 @@ def plot_report(report, path, *, sweep=True, remainder=True):
         else:
             draw_remainder(ax, data)
     if not panels:
+        # Only text: the table's lines left-aligned as printed, long ones wrapped.
+        fig.set_size_inches(9, 4)
         ax = fig.add_subplot(1, 1, 1)
         ax.axis("off")
-        ax.text(0.5, 0.5, "\n".join(report.to_text().splitlines()[1:8]), ha="center",
-                va="center", fontsize=8, family="monospace")
-    fig.suptitle(report.to_text().splitlines()[0], fontsize=9)
+        lines = [part for line in report.to_text().splitlines()[1:8]
+                 for part in (textwrap.wrap(line, 110, subsequent_indent="    ") or [""])]
+        ax.text(0.0, 0.5, "\n".join(lines), ha="left", va="center", fontsize=7,
+                family="monospace")
+    # The summary line, wrapped to the figure's width (about 16 characters an inch at 9 pt).
+    width = max(60, int(fig.get_figwidth() * 16))
+    fig.suptitle("\n".join(textwrap.wrap(report.to_text().splitlines()[0], width)), fontsize=9)
     return _save(fig, path)
 
 

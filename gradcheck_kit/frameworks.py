@@ -1092,6 +1092,12 @@ def load_torch_params(path):
     torch.Size([2])
     """
     p = Path(path)
+    if p.is_file():
+        with open(p, "rb") as handle:   # torch.save writes a zip archive; torch.load would
+            if handle.read(2) != b"PK":  # take anything else for a legacy pickle
+                raise CheckInputError(f"--params: {p.name} is not a PyTorch file saved by "
+                                      "torch.save (no zip archive); save a state dict with "
+                                      "torch.save, or the params with numpy.savez")
     try:
         import torch
     except ImportError as exc:

@@ -51,19 +51,17 @@ def test_a_report_that_cannot_call_the_cost_again_still_maps_its_rows(tmp_path):
     assert (tmp_path / "map.png").stat().st_size > 0
 
 
-@pytest.mark.filterwarnings("ignore:constrained_layout not applied")   # see the xfail below
 def test_a_report_with_nothing_to_draw_shows_its_text(tmp_path):
     report = gk.compare_gradient(lambda p: p["a"] ** 2 * p["b"], {"a": 1.5, "b": -0.5},
                                  lambda p: {"a": 2 * p["a"] * p["b"], "b": p["a"] ** 2})
     fig = report.plot(tmp_path / "text.png", sweep=False, remainder=False)
     assert len(fig.axes) == 1 and not fig.axes[0].axison
     shown = fig.axes[0].texts[0].get_text()
-    assert shown == "\n".join(report.to_text().splitlines()[1:8])
+    # the table's lines as printed, long ones wrapped: the same words in the same order
+    assert shown.split() == "\n".join(report.to_text().splitlines()[1:8]).split()
     assert "a" in shown and "agree" in shown
 
 
-@pytest.mark.xfail(strict=True, reason="figures.plot_report lays out the text-only figure with "
-                   "layout='constrained', and matplotlib warns that it could not apply it")
 def test_a_report_with_nothing_to_draw_draws_without_warnings(tmp_path):
     report = gk.compare_gradient(lambda p: p["a"] ** 2 * p["b"], {"a": 1.5, "b": -0.5},
                                  lambda p: {"a": 2 * p["a"] * p["b"], "b": p["a"] ** 2})

@@ -71,9 +71,6 @@ def test_a_truncated_pt_file_is_a_usage_error_naming_the_file(project, capsys):
     assert "--params: cannot read start.pt: " in err and "Traceback" not in err
 
 
-@pytest.mark.xfail(strict=True, reason="torch.load reads a file that is no torch archive as a "
-                   "legacy pickle, so any foreign file is reported as holding 'Python objects "
-                   "other than tensors' instead of as unreadable")
 def test_a_file_that_is_no_torch_archive_is_not_called_a_pickle(project, capsys):
     (project / "start.pt").write_text("w = 0.5, 1.5\n")
     code = main(["check", "quad.py:cost", "--gradient", "quad.py:grad", "--params", "start.pt"])
