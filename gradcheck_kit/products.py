@@ -596,6 +596,27 @@ def _precision_note(setup) -> list:
             "x + t v exactly"]
 
 
+def _vector_check_start(fun, params, probes, seed, rtol, atol, given, default, name,
+                        argument) -> tuple:
+    """What compare_jvp and compare_vjp both do before their probes: check the options,
+    call fun at the base point (twice, for determinism), and pick the product (the user's
+    or autograd's).  Returns (setup, probes, rng, rtol, atol, outputs, center, names,
+    problems, eps_f, product)."""
+    setup, probes, rng, rtol, atol = _start(fun, params, "fun", probes, seed, rtol, atol)
+    y0 = setup.at_base()
+    outputs = _Outputs(y0)
+    center = outputs.flat(y0, "fun")
+    names = outputs.names()
+    _finite_base(center, names, "fun")
+    problems = _determinism(setup, center, outputs, setup.at_base())
+    eps_f = max(_output_eps(np.asarray(x)) for x in _leaf_values(y0))
+    product = given if given is not None else default(fun, setup)
+    if not callable(product):
+        raise CheckInputError(f"{name}: expected a function {name}(params, {argument}) or "
+                              f"None, got {type(product).__name__}")
+    return setup, probes, rng, rtol, atol, outputs, center, names, problems, eps_f, product
+
+
 def compare_jvp(fun, params, jvp=None, *, probes=DEFAULT_PROBES, seed=None, rtol=None,
                 atol=None) -> ProductReport:
     """Check a Jacobian-vector product J v against differences of `fun` along v.
@@ -644,18 +665,8 @@ def compare_jvp(fun, params, jvp=None, *, probes=DEFAULT_PROBES, seed=None, rtol
     if kind is not None:
         return _on_framework(compare_jvp, "jvp", kind, fun, params, jvp,
                              dict(probes=probes, seed=seed, rtol=rtol, atol=atol))
-    setup, probes, rng, rtol, atol = _start(fun, params, "fun", probes, seed, rtol, atol)
-    y0 = setup.at_base()
-    outputs = _Outputs(y0)
-    center = outputs.flat(y0, "fun")
-    names = outputs.names()
-    _finite_base(center, names, "fun")
-    problems = _determinism(setup, center, outputs, setup.at_base())
-    eps_f = max(_output_eps(np.asarray(x)) for x in _leaf_values(y0))
-    product = jvp if jvp is not None else _autograd_jvp(fun, setup)
-    if not callable(product):
-        raise CheckInputError(f"jvp: expected a function jvp(params, v) or None, got "
-                              f"{type(product).__name__}")
+    setup, probes, rng, rtol, atol, outputs, center, names, problems, eps_f, product = \
+        _vector_check_start(fun, params, probes, seed, rtol, atol, jvp, _autograd_jvp, "jvp", "v")
     rows, analytic_all, numeric_all, errors, worst = [], [], [], [], []
     h = step_for(eps_f)
     for k in range(probes):
@@ -726,18 +737,8 @@ def compare_vjp(fun, params, vjp=None, *, probes=DEFAULT_PROBES, seed=None, rtol
     if kind is not None:
         return _on_framework(compare_vjp, "vjp", kind, fun, params, vjp,
                              dict(probes=probes, seed=seed, rtol=rtol, atol=atol))
-    setup, probes, rng, rtol, atol = _start(fun, params, "fun", probes, seed, rtol, atol)
-    y0 = setup.at_base()
-    outputs = _Outputs(y0)
-    center_all = outputs.flat(y0, "fun")
-    names = outputs.names()
-    _finite_base(center_all, names, "fun")
-    problems = _determinism(setup, center_all, outputs, setup.at_base())
-    eps_f = max(_output_eps(np.asarray(x)) for x in _leaf_values(y0))
-    product = vjp if vjp is not None else _autograd_vjp(fun, setup)
-    if not callable(product):
-        raise CheckInputError(f"vjp: expected a function vjp(params, u) or None, got "
-                              f"{type(product).__name__}")
+    setup, probes, rng, rtol, atol, outputs, center_all, names, problems, eps_f, product = \
+        _vector_check_start(fun, params, probes, seed, rtol, atol, vjp, _autograd_vjp, "vjp", "u")
     rows, analytic_all, numeric_all, errors, worst, given = [], [], [], [], [], []
     h = step_for(eps_f)
     for k in range(probes):
