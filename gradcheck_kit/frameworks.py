@@ -619,15 +619,7 @@ class JaxBridge:
         return [jnp.asarray(np.array(v)) for v in leaves_of(numpy_tree)]
 
     def assemble(self, leaves):
-        it = iter(leaves)
-
-        def build(t):
-            if isinstance(t, dict):
-                return type(t)((k, build(v)) for k, v in t.items())
-            if isinstance(t, (list, tuple)):
-                return _like(t, [build(v) for v in t])
-            return next(it)
-        return build(self.template)
+        return _rebuild_numpy(self.template, leaves)
 
     def run(self, fn, numpy_tree, rest=()):
         with _x64(sys.modules["jax"]):
