@@ -203,7 +203,8 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
 
 def second_opinion(setup: Setup, first: Comparison, rtol, atol,
                    analytic_eps=None) -> Comparison:
-    """Recheck mismatches with real Richardson differences (four evaluations each).
+    """Recheck mismatches, and rough agreements, with real Richardson differences (four
+    evaluations each).
 
     Central, one-sided and complex-step stencils cannot tell a kink from a wrong
     value (the complex step never leaves the point), and a one-sided or central
@@ -212,18 +213,23 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     but not in one coordinate.  So every such method's mismatches are rechecked:
     where Richardson agrees, or finds a kink with the analytic value between the
     one-sided slopes, that verdict (and its numbers) settles the row: a false
-    alarm costs a user more than four evaluations.
+    alarm costs a user more than four evaluations.  An agreement whose step error
+    alone is a large share of the value (a kink inside a central stencil) proves
+    little, so Richardson's verdict replaces it, whatever it is.
     """
     method = first.numeric.method
     failing = ("disagree", "non-finite") if method == "complex-step" else ("disagree",)
-    bad = np.flatnonzero(np.isin(first.verdict, failing))
+    rough = verdicts.rough_agreement(first.verdict, first.numeric.estimates)
+    bad = np.flatnonzero(np.isin(first.verdict, failing) | rough)
     if method in stencils.REFINABLE or bad.size == 0 or setup.runner.interrupted:
         return first
     coords = first.numeric.coords[bad]
     h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
     again = compare(setup, numeric_derivatives(setup, "richardson", coords, h),
                     first.analytic, rtol, atol, analytic_eps)
-    settled = np.isin(again.verdict, ("agree", "kink"))
+    # A mismatch stands unless Richardson settles it; a rough agreement is Richardson's
+    # to decide either way (its error is far smaller, and it can tell a kink).
+    settled = np.isin(again.verdict, ("agree", "kink")) | rough[bad]
     if not settled.any():
         return first
     numeric = first.numeric.copy()

@@ -40,9 +40,10 @@ class Lines:
     """What the noise lines saw: the features used downstream, and their verdicts."""
     features: stencils.LineFeatures
     quantized: bool          # values repeat exactly and jump in between
-    flat: bool               # every value on the first line equals f(x) exactly
+    flat: bool               # every value on every finite line equals f(x) exactly
     undefined: bool          # a line met a non-finite value or an error
-    direction: np.ndarray    # the first line's direction (for the flat-line test)
+    direction: np.ndarray    # the first finite line's direction (for the flat-line tests)
+    spacing: float = stencils.NOISE_SPACING   # and its spacing
 
 
 def noise_direction(size: int, scale: np.ndarray, seed=0, sizes: int = 1) -> np.ndarray:
@@ -115,39 +116,54 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
             undefined = True
             continue
         seen.append((values, stencils.line_features(values, spacing,
-                                                    float(np.sum((v / scale) ** 2)))))
+                                                    float(np.sum((v / scale) ** 2))), v))
     if not seen:
         return Lines(stencils.LineFeatures.none(), False, False, undefined, v1)
     # The largest noise level; the other features (typical curvature, slope, third
-    # derivative) from the first line that was finite, and the largest curvature of all
-    # lines for the one-sided stencils, which see none themselves (one random direction
-    # can see a coordinate's curvature at a fraction of its size: the Rosenbrock minimiser).
-    first = seen[0][1]
+    # derivative) from the first line that was finite and not flat (a direction the cost
+    # does not depend on shows none of them), and the largest curvature of all lines for
+    # the one-sided stencils, which see none themselves (one random direction can see a
+    # coordinate's curvature at a fraction of its size: the Rosenbrock minimiser).
+    first = next((f for values, f, _ in seen if np.any(values != f0)), seen[0][1])
     features = stencils.LineFeatures(
-        noise=max(f.noise for _, f in seen), order=first.order,
+        noise=max(f.noise for _, f, _ in seen), order=first.order,
         curvature_s2=first.curvature_s2, slope=first.slope, third=first.third,
         values=first.values, spacing=first.spacing,
-        largest_curvature_s2=max(f.curvature_s2 for _, f in seen))
-    quantized = any(stencils.looks_quantized(values) for values, _ in seen)
-    flat = bool(np.all(seen[0][0] == f0))
-    return Lines(features, quantized, flat, undefined, v1)
+        largest_curvature_s2=max(f.curvature_s2 for _, f, _ in seen))
+    quantized = any(stencils.looks_quantized(values) for values, _, _ in seen)
+    # Flat: no line changed at all (a line along a direction the cost does not depend on,
+    # next to lines that change, says nothing about quantization).
+    flat = all(np.all(values == f0) for values, _, _ in seen)
+    _, line, direction = seen[0]
+    return Lines(features, quantized, flat, undefined, direction, line.spacing)
 
 
-# A cost flat along the noise line is looked at again farther out, to these distances
-# (relative to each coordinate's scale): a rounded output (to 1e-3 or 1e-2, say) is flat at
-# the noise spacing, about 1e-6, but changes over a few hundredths or tenths.
-COARSE_SPACINGS = (2.0 ** -6, 2.0 ** -2)
+# A cost flat along the noise line is looked at again farther out, at spacings 4, 16,
+# 64, ... times the noise line's, up to 1/16 of each coordinate's scale: a rounded output
+# (to 1e-3 or 1e-2, say) is flat at the noise spacing, about 1e-6, but jumps over a few
+# hundredths or tenths.  Spacings 4x apart, so that on some line the cost jumps at between
+# 1/8 and 1/2 of the steps or so, and its jumps stand between repeated values there.
+COARSE_RATIO = 4.0
+COARSEST_SPACING = 2.0 ** -4
 
 
 def look_coarser(runner: CostRunner, lines: Lines, f0: float) -> Lines:
-    """A cost whose values did not change at all along the first noise line: eight more
-    points on each of two farther lines along the same direction.  Where they change,
-    the cost is piecewise constant at the stencils' scale (quantized); else (a cost that
-    does not depend on params, or is flat here) it is left as it was."""
-    for reach in COARSE_SPACINGS:
-        values = _line_values(runner, lines.direction, reach / 4, f0)
-        if values is not None and np.any(values != f0):
-            return replace(lines, quantized=True)
+    """A cost whose values did not change at all along the noise lines: eight more
+    points on each of farther lines along the same direction, nearest first, until one
+    line's values decide.  Jumps between exact repeats: the cost is piecewise constant
+    at the stencils' scale (quantized).  Changes of rounding size (a direction the cost
+    does not depend on, as a softmax's along equal shifts of its logits) or a change at
+    every step (a flat minimum, smooth farther out): it is not.  Other patterns (a
+    hinge's plateau) or no change at all: the next line is looked at."""
+    spacing = lines.spacing
+    while spacing < COARSEST_SPACING:
+        spacing = min(spacing * COARSE_RATIO, COARSEST_SPACING)
+        values = _line_values(runner, lines.direction, spacing, f0)
+        if values is None:
+            return lines
+        found = stencils.steps_seen(values)
+        if found is not None:
+            return replace(lines, quantized=True) if found else lines
     return lines
 
 
@@ -236,11 +252,11 @@ def descent_uphill(runner: CostRunner, analytic, scale, f0, noise, eps_f) -> boo
 
 
 def flat_but_sloped(lines: Lines, analytic, f0) -> bool:
-    """The first line's values are all exactly f(x), yet the analytic gradient says
-    they change by far more than rounding over it: the cost is piecewise constant."""
+    """The lines' values are all exactly f(x), yet the analytic gradient says the first
+    line's change by far more than rounding over it: the cost is piecewise constant."""
     if not lines.flat or lines.features.values.size == 0 or not np.all(np.isfinite(analytic)):
         return False
-    reach = (stencils.NOISE_POINTS // 2) * lines.features.spacing
+    reach = (stencils.NOISE_POINTS // 2) * lines.spacing
     predicted = abs(float(analytic @ lines.direction)) * reach
     return predicted > 1e3 * np.finfo(float).eps * max(abs(f0), 1e-300)
 

@@ -139,12 +139,25 @@ def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -
     return verdict
 
 
+# An agreement whose estimated step error is above this share of the value is rough.
+ROUGH_SHARE = 0.1
+
+
+def rough_agreement(verdict, est) -> np.ndarray:
+    """Agreeing rows whose error estimate is mostly step error (not rounding or noise)
+    and at least ROUGH_SHARE of the numeric value: the stencil spans a length on which
+    the cost changes character (a kink, a steep bend), so its agreement says little."""
+    return (verdict == "agree") & (est.truncation > est.rounding) & \
+        (est.truncation > ROUGH_SHARE * np.abs(est.derivative))
+
+
 def mark_flat(verdict, values, f0, details) -> np.ndarray:
     """'noisy' (undecided) where a quantized cost returned exactly f(x) at every point of
     a row's stencil: the difference is zero whatever the gradient, so it decides nothing
     (a step long enough to cross the cost's jumps, step=, can)."""
     verdict = verdict.copy()
-    flat = np.all(values.real == f0, axis=1) & np.isin(verdict, ("agree", "disagree"))
+    # All of each value, imaginary part too: a complex step's real parts are f(x) anyway.
+    flat = np.all(values == f0, axis=1) & np.isin(verdict, ("agree", "disagree"))
     for j in np.flatnonzero(flat):
         verdict[j] = "noisy"
         details[j] = ("the cost is constant over this stencil (piecewise constant at this "

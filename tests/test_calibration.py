@@ -1,12 +1,10 @@
 """The error estimate is a promise (DESIGN.md): |numeric - exact| <= error_estimate for at
 least 99.9% of coordinates, per method, over a broad corpus against exact derivatives.
 
-These tests measure it on the quick corpus of calibration_corpus.py.  Measured on the full
-corpus on 2026-12-02 (python tests/calibration.py): five-point, Richardson and the complex
-step 100%, auto 99.95%, central 99.85%, forward 99.66%, backward 99.66%.  One-sided and
-central differences model the curvature their own points cannot see, so the promise is not
-met by those three yet (issue 9, item 4): they are held at their measured level less a
-margin, the others at BAR, so that a change which makes the estimates worse fails here.
+These tests measure it on the full corpus of calibration_corpus.py (about 15 s).  Measured
+on 2026-12-02 (python tests/calibration.py, 4062 coordinates): five-point, Richardson and the
+complex step 100%, auto and central 99.95%, forward and backward 99.93%.  Each method is held
+at BAR, a little below the promise, so that a change which makes the estimates worse fails.
 Exact gradients raise no alarm with any method.  The corpus itself is checked
 too, so that a wrong "exact" gradient fails here rather than blaming the engine:
 high-precision five-point differences of each case's mpmath twin (80 digits), the twin against
@@ -24,14 +22,11 @@ import calibration_corpus as corpus
 import mgh_problems
 
 BAR = 0.998
-# Measured on the quick corpus (tests/calibration.py --quick: 99.84%, 99.84%, 99.76%), minus a
-# margin: the methods that do not meet BAR yet.  Raise these as the error model improves.
-MEASURED = {"forward": 0.995, "backward": 0.995, "central": 0.995}
 
 
 @functools.lru_cache(maxsize=None)
-def quick_coverage(method):
-    return corpus.coverage(method, quick=True, worst=5)
+def full_coverage(method):
+    return corpus.coverage(method, quick=False, worst=5)
 
 
 def summary(result) -> str:
@@ -46,14 +41,16 @@ def summary(result) -> str:
 # --- the promise ---------------------------------------------------------------------------------
 @pytest.mark.parametrize("method", corpus.METHODS)
 def test_error_estimates_cover_the_actual_error(method):
-    result = quick_coverage(method)
-    assert result["total"] > 0
-    assert result["fraction"] >= MEASURED.get(method, BAR), summary(result)
+    result = full_coverage(method)
+    assert result["total"] > 3500     # the complex step skips costs that are not complex-safe
+    assert result["fraction"] >= BAR, summary(result)
 
 
 @pytest.mark.parametrize("method", corpus.METHODS)
 def test_exact_gradients_raise_no_alarm(method):
-    result = quick_coverage(method)
+    # The full corpus: a softmax whose first noise line ran along an equal shift of its
+    # logits (a direction the cost does not depend on) was called quantized by one seed.
+    result = full_coverage(method)
     assert result["false_alarms"] == 0, summary(result)
 
 

@@ -240,3 +240,76 @@ def test_a_zero_gradient_of_a_coarsely_rounded_cost_does_not_pass(quantum):
 def test_a_cost_that_does_not_depend_on_params_passes_a_zero_gradient():
     report = gk.compare_gradient(lambda v: 3.0, np.array([0.3, -1.2]), lambda v: 0 * v)
     assert report.passed and report.counts == {"agree": 2}
+
+
+# --- a cost flat along one noise line, or flat near the point, is not quantized --------------
+@pytest.mark.parametrize("method", METHODS)
+def test_a_softmax_along_a_direction_it_does_not_depend_on_raises_no_alarm(method):
+    # Softmax cross-entropy is unchanged by an equal shift of its logits (common practice).
+    # The logits here are +-x, signed like the first noise line's direction, so that line
+    # runs exactly along such a shift and its values never change; the other lines do.
+    from gradcheck_kit.probes import noise_direction
+    x = np.array([0.3, -0.2, 0.5, 0.1, -0.4, 0.2])
+    sign = np.sign(noise_direction(x.size, np.ones(x.size), 0))
+
+    def cost(v):
+        z = sign * v
+        m = z.max()
+        return m + np.log(np.sum(np.exp(z - m))) - z[2]
+
+    def gradient(v):
+        p = np.exp(sign * v - np.max(sign * v))
+        p /= p.sum()
+        p[2] -= 1
+        return sign * p
+    report = gk.compare_gradient(cost, x, gradient, method=method)
+    assert report.passed and report.counts == {"agree": 6}, report.to_text()
+    assert not any("piecewise constant" in n for n in report.notes), report.notes
+    wrong = gk.compare_gradient(cost, x, lambda v: 1.01 * gradient(v), method=method)
+    assert wrong.counts.get("disagree", 0) >= 5, wrong.to_text()
+
+
+@pytest.mark.parametrize("method", ["auto", "complex-step", "central"])
+def test_a_softmax_layer_whose_first_noise_line_is_an_equal_shift_raises_no_alarm(method):
+    # Seen on the 4x3 softmax layer of ml_losses.py drawn with seed 5: the first noise
+    # line's signs line up along each row of W and along b, so the line shifts every
+    # sample's logits equally; its values were flat, rounding-level changes farther out
+    # were taken for quantization, and every coordinate came back 'noisy' (a failed check).
+    import ml_losses      # tests/ is on sys.path
+    case = ml_losses.softmax_cross_entropy(np.random.default_rng(5))
+    report = gk.compare_gradient(case.cost, case.params, case.gradient, method=method)
+    assert report.passed and report.counts == {"agree": 15}, report.to_text()
+
+
+FLAT_HERE = {
+    # 1 + sum(x^8): every noise line rounds to exactly 1; a flat minimum, smooth farther out
+    "flat minimum": (lambda v: 1.0 + np.sum(v ** 8), lambda v: 8 * v ** 7, np.zeros(3)),
+    # an epsilon-insensitive loss inside its dead zone (a plateau between two hinges)
+    "dead zone": (lambda v: np.sum(np.maximum(np.abs(v - 0.2) - 0.05, 0.0)),
+                  lambda v: np.where(np.abs(v - 0.2) > 0.05, np.sign(v - 0.2), 0.0),
+                  np.full(3, 0.2)),
+    # x - clip(x, -a, a), monotone with a plateau in the middle (a soft-threshold residual)
+    "plateau on a climb": (lambda v: 2.0 + np.sum(v - np.clip(v, -0.04, 0.04)),
+                           lambda v: (np.abs(v) > 0.04).astype(float), np.zeros(3)),
+}
+
+
+@pytest.mark.parametrize("name", sorted(FLAT_HERE))
+def test_a_cost_flat_near_the_point_but_not_rounded_passes_its_zero_gradient(name):
+    cost, gradient, x = FLAT_HERE[name]
+    report = gk.compare_gradient(cost, x, gradient)
+    assert report.passed and report.counts == {"agree": 3}, report.to_text()
+    assert not any("piecewise constant" in n for n in report.notes), report.notes
+
+
+@pytest.mark.parametrize("values, expected", [
+    ([0, 0, 0, 1, 1, 1, 1, 2, 2], True),      # jumps standing alone between repeats
+    ([3, 2, 2, 1, 0, -1, -2, -2, -3], True),  # a staircase: two treads between falls
+    ([0, 0, 0, 0, 1, 2, 3, 4, 5], False),     # a hinge: a plateau next to a slope
+    ([2, 1, 0, 0, 0, 0, 0, 1, 2], False),     # a dead zone: one plateau between hinges
+    ([2, 1, 1, 1, 1, 1, 1, 0, -1], False),    # one plateau on a climb (soft threshold)
+    ([0, 1, 2, 3, 4, 5, 6, 7, 8], False),     # changes at every step
+])
+def test_looks_quantized_tells_steps_from_plateaus(values, expected):
+    from gradcheck_kit.stencils import looks_quantized
+    assert looks_quantized(np.array(values, dtype=float) * 1e-3 + 1.0) is expected
