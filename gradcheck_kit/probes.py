@@ -115,8 +115,9 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
             # cost curves so fast there that the difference table would call it noise.
             undefined = True
             continue
-        seen.append((values, stencils.line_features(values, spacing,
-                                                    float(np.sum((v / scale) ** 2))), v))
+        spread = float(np.sum((v / scale) ** 2))
+        seen.append(_settled_line(runner, v, spacing, f0, values,
+                                  stencils.line_features(values, spacing, spread), spread))
     if not seen:
         return Lines(stencils.LineFeatures.none(), False, False, undefined, v1)
     # The largest noise level; the other features (typical curvature, slope, third
@@ -136,6 +137,34 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
     flat = all(np.all(values == f0) for values, _, _ in seen)
     _, line, direction = seen[0]
     return Lines(features, quantized, flat, undefined, direction, line.spacing)
+
+
+# A line whose difference table never levels off (stencils.table_settles) is measured
+# again this much shorter, up to SHORTER_TRIES times (1/4096 of the spacing).
+SHORTER_SPACING = 1 / 16
+SHORTER_TRIES = 3
+
+
+def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread) -> tuple:
+    """(values, features, direction) of a line, measured again at shorter spacings while
+    its table does not settle at the first: the cost may vary on a length shorter than the spacing
+    along v (a pole or a fast oscillation near the point), whose smooth change passed
+    for noise (0.5 for gammaln at 1e-7).  The shorter line is taken where its level is
+    less than half: noise that is really there keeps its level at any spacing."""
+    best = (values, features)
+    if features.settled:
+        return best + (v,)
+    # Every shorter spacing is tried: a line across a pole can look like steady noise at
+    # one of them (gammaln at 1e-7, spacing 7e-8), the same level as the line before.
+    for _ in range(SHORTER_TRIES):
+        spacing *= SHORTER_SPACING
+        values = _line_values(runner, v, spacing, f0)
+        if values is None:
+            break
+        features = stencils.line_features(values, spacing, spread)
+        if features.noise < 0.5 * best[1].noise:
+            best = (values, features)
+    return best + (v,)
 
 
 # A cost flat along the noise line is looked at again farther out, at spacings 4, 16,

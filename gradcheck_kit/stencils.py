@@ -65,6 +65,7 @@ class Near:
     noise: float = 0.0
     curvature: object = 0.0
     third: object = 0.0
+    size: object = None      # |x| per row, for reach(); None: the scale
 
 
 def value_noise(values: np.ndarray, near: Near) -> np.ndarray:
@@ -90,11 +91,31 @@ def combine(method: str, values: np.ndarray, h: np.ndarray, scale: np.ndarray,
     # Rounding in the terms a derivative is made of: where the cost is near 0 (a zero
     # residual) its values round far below its terms, which are about |f1| + |f0| / scale
     # + |f2| * scale; no stencil can be more exact than eps_f times those.
-    curvature = np.maximum(est.curvature, curvature_hint)
+    curvature = np.maximum(est.curvature, line_hint(method, curvature_hint, est, f0, scale))
+    size = scale if near.size is None else near.size
     est.rounding = np.maximum(est.rounding, TERM_ROUNDING * eps_f * (
-        np.abs(est.derivative) + abs(f0) / scale + curvature * scale))
+        np.abs(est.derivative) + abs(f0) / scale +
+        curvature * reach(est.derivative, curvature, scale, size)))
     est.noise = noise
     return est
+
+
+# Stencils that measure a coordinate's own curvature take the noise line's typical one
+# (a direction through all coordinates) as at most LINE_HINT_CAP times the largest of
+# its own curvature, |f1| / scale and |f0| / scale^2: one coordinate whose cost varies
+# on a length of 1e-7 (gammaln near its pole) curves the whole line, and would
+# otherwise loosen every other coordinate's error estimate and allowance with it.
+LINE_HINT_CAP = 1e4
+MEASURES_CURVATURE = ("central", "five-point", "richardson")
+
+
+def line_hint(method: str, hint, est: "Estimates", f0: float, scale):
+    """The line's typical |f2| as the stencil may use it for each row (LINE_HINT_CAP)."""
+    if method not in MEASURES_CURVATURE:
+        return hint
+    own = np.maximum(np.maximum(est.curvature, np.abs(est.derivative) / scale),
+                     abs(f0) / scale ** 2)
+    return np.minimum(hint, LINE_HINT_CAP * own)
 
 
 # The measured noise level is a standard deviation s.  A central difference's rounding,
@@ -143,16 +164,22 @@ def _estimate_by_method(method, f, h, scale, noise, near: Near) -> Estimates:
         d = f[:, 0].imag / h
         # Truncation h^2 |f3| / 6, with |f3| from the model |f1| / scale^2 or the hint.
         f3 = np.maximum(np.abs(d) / scale ** 2, third_hint)
-        # Rounding: the imaginary part is a sum of terms of about |f1| and |f0| / scale.
-        return Estimates(d, h ** 2 * f3 / 6, 4 * eps_f * (np.abs(d) + abs(f0) / scale), zero)
+        # Rounding: the imaginary part is a sum of terms of about |f1| and |f0| / scale,
+        # and no finer than the smallest subnormal (x h underflows where x is tiny).
+        finest = np.finfo(f.real.dtype).smallest_subnormal if f.dtype.kind in "fc" else 0.0
+        rounding = 4 * eps_f * (np.abs(d) + abs(f0) / scale) + finest / h
+        return Estimates(d, h ** 2 * f3 / 6, rounding, zero)
     if method in ("forward", "backward"):
         sign = 1.0 if method == "forward" else -1.0
         d = sign * (f[:, 0] - f0) / h
         # Truncation h |f2| / 2 with the model |f2| ~ max(|f1| / scale, typical |f2|).
         # The model is rough (a typical |f2| may be far below this coordinate's), so the
         # bound is ONE_SIDED_SAFETY times the textbook h |f2| / 2.
+        # The next term, h^2 |f3| / 6 with the line's third derivative, matters where
+        # |f2| vanishes (x^3 at 0: the whole value is that term).
         f2 = np.maximum(np.abs(d) / scale, curvature_hint)
-        return Estimates(d, ONE_SIDED_SAFETY * h * f2 / 2, 2 * noise / h, zero)
+        trunc = ONE_SIDED_SAFETY * (h * f2 / 2 + h ** 2 * third_hint / 6)
+        return Estimates(d, trunc, 2 * noise / h, zero)
     central = (f[:, 0] - f[:, 1]) / (2 * h)
     second = np.abs(f[:, 0] - 2 * f0 + f[:, 1]) / h ** 2
     if method == "central":
@@ -161,7 +188,10 @@ def _estimate_by_method(method, f, h, scale, noise, near: Near) -> Estimates:
         # and the coordinate's scale; never below the third derivative seen on the line.
         # 2 |f2| / L: exact for a logarithm (-log x: f3 = 2 f2^2 / f1), twice an exponential.
         length = np.clip(np.abs(central) / np.maximum(second, 1e-300), h, scale)
-        f3 = np.maximum(2 * second / length + np.abs(central) / scale ** 2, third_hint)
+        modelled = 2 * second / length + np.abs(central) / scale ** 2
+        # The line's third derivative only up to LINE_HINT_CAP of this row's own sizes.
+        third_hint = np.minimum(third_hint, LINE_HINT_CAP * (modelled + abs(f0) / scale ** 3))
+        f3 = np.maximum(modelled, third_hint)
         trunc = CENTRAL_SAFETY * h ** 2 / 6 * f3
         return Estimates(central, trunc, noise / h, second)
     if method == "five-point":
@@ -228,6 +258,17 @@ def pick_refined(first: Estimates, h_first, second: Estimates, h_second,
     """For each refined coordinate: is the second value's modelled error the smaller?"""
     return extrapolation_error(second, h_second, method) < \
         extrapolation_error(first, h_first, method)
+
+
+def reach(derivative, curvature, scale, size) -> np.ndarray:
+    """The length over which a gradient entry's terms are |f2| times it: the scale,
+    max(|x|, 1), or, where both |x| and the length the cost varies on, |f1| / |f2|, are
+    shorter, the larger of those two (ndtri at 1e-10 varies on 1e-10: |f2| * 1 would
+    make terms 1e10 times the derivative).  A vanishing slope (a minimiser) keeps the
+    scale."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        length = np.abs(derivative) / curvature
+    return np.fmin(scale, np.fmax(size, length))
 
 
 def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
@@ -358,6 +399,7 @@ class LineFeatures:
     values: np.ndarray
     spacing: float = NOISE_SPACING
     largest_curvature_s2: float = 0.0   # the largest typical |f2| * scale^2 of all lines
+    settled: bool = True   # the difference table reached a consistent order (or vanished)
 
     @staticmethod
     def none() -> "LineFeatures":
@@ -384,7 +426,7 @@ def line_features(values, t: float, spread: float) -> LineFeatures:
     slope = max(0.0, float(np.max(np.abs(f - f[mid]))) - 3 * noise)
     third = max(0.0, float(np.max(np.abs(np.diff(g, 3)), initial=0.0)) - 8 * noise)
     return LineFeatures(noise, order, second / (m * t) ** 2 / spread, slope / half,
-                        third / t ** 3, f, t)
+                        third / t ** 3, f, t, settled=table_settles(g.tolist(), noise))
 
 
 def smooth_side(values) -> np.ndarray:
@@ -506,15 +548,23 @@ def _numpy_sum(a: list) -> float:
     return _numpy_sum(a[:half]) + _numpy_sum(a[half:])
 
 
-def _difference_table_levels(f) -> tuple:
-    """(level, order) of values f scaled to at most 1 in size, all finite (so no
-    difference overflows or is NaN, and max / min say whether any is > 0 / < 0)."""
-    diffs, sigmas = list(f), []
+def _table_orders(f):
+    """(k, sigma_k, whether the k-th differences change sign) for k = 1, 2, ... of
+    values f scaled to at most 1 in size (see _difference_table_noise)."""
+    diffs = list(f)
     for k in range(1, len(diffs) - 1):
         diffs = [b - a for a, b in zip(diffs, diffs[1:])]
         gamma = _GAMMA[k] if k < len(_GAMMA) else math.factorial(k) ** 2 / math.factorial(2 * k)
         mean = _numpy_sum([d * d for d in diffs]) / len(diffs)
-        sigmas.append((k, math.sqrt(gamma * mean), max(diffs) > 0 and min(diffs) < 0))
+        yield k, math.sqrt(gamma * mean), max(diffs) > 0 and min(diffs) < 0
+
+
+def _difference_table_levels(f) -> tuple:
+    """(level, order) of values f scaled to at most 1 in size, all finite (so no
+    difference overflows or is NaN, and max / min say whether any is > 0 / < 0)."""
+    sigmas = []
+    for item in _table_orders(f):
+        sigmas.append(item)
         # The first consistent order, as soon as its next two are known: the orders
         # above it cannot change the answer (it is nonzero, so not all vanish).
         if len(sigmas) >= 3 and _consistent(*sigmas[-3:]):
@@ -525,6 +575,23 @@ def _difference_table_levels(f) -> tuple:
     candidates = [item for item in sigmas if item[0] >= 2] or sigmas
     k, s, _ = min(candidates, key=lambda item: item[1])
     return s, k
+
+
+def table_settles(f: list, level: float) -> bool:
+    """Do the values' differences settle at a noise level, or vanish?  False where no
+    order of the table agrees with the next two (see _difference_table_levels) while the
+    level is above the values' rounding: a smooth cost that varies on a length shorter
+    than the spacing (a pole or a fast oscillation next to the point), whose table
+    never levels off, so that its smallest spread is no noise level at all."""
+    size = max((abs(v) for v in f), default=0.0)
+    if not level > ROUNDING_CHANGE * np.finfo(float).eps * size:
+        return True
+    sigmas = []
+    for item in _table_orders([v / size for v in f]):
+        sigmas.append(item)
+        if len(sigmas) >= 3 and _consistent(*sigmas[-3:]):
+            return True
+    return False
 
 
 def _consistent(first, second, third) -> bool:
