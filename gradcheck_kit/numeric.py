@@ -24,11 +24,19 @@ from .probes import Setup
 # was too long for the coordinate's curvature (e.g. x4, x5 of Osborne 1 in More, Garbow
 # & Hillstrom, whose cost varies on a scale of 1/300 in them).
 REFINE_ABOVE = 1e-7
+# ... or above this fraction of the value itself: terms far above it (a coordinate whose
+# scale, max(|x|, 1), is far above the length its cost varies on) must not hide a value
+# known to 0.2% only (gammaln at 1e-7).
+REFINE_SHARE = 1e-4
 # A stencil that meets a non-finite value (a log or sqrt stepped across 0) is redone with
-# its step cut by SHORTEN_BY, up to SHORTEN_TIMES times (2^-18 of the step at most), then
+# its step cut by SHORTEN_BY, up to SHORTEN_TIMES times (2^-36 of the step at most: ndtri
+# at 1e-10 needs 2^-24 of 5e-4), then
 # one-sided on the side where the cost is defined.
 SHORTEN_BY = 8.0
-SHORTEN_TIMES = 6
+SHORTEN_TIMES = 12
+# ... but never below this many units of x's last place: a step that x + h rounds away
+# would "find" the cost finite at x itself and a derivative of 0.
+SHORTEST_ULPS = 1024.0
 
 
 @dataclass
@@ -61,8 +69,78 @@ def numeric_derivatives(setup: Setup, method: str, coords: np.ndarray, h: np.nda
         return numeric
     numeric = redo_undefined(setup, numeric)
     if method in stencils.REFINABLE and refine and not setup.runner.interrupted:
+        numeric = shorten_long_steps(setup, numeric)
         numeric = refine_steps(setup, numeric)
     return numeric
+
+
+# A fourth-order value whose gap to its embedded second-order value is above this share
+# of itself (and above rounding and LONG_STEP_FLOOR of |f0| / scale), or whose stencil
+# shows a kink, came from a step longer than the length the cost varies on there
+# (gammaln at 1e-7, whose step of 5e-4 crosses the pole; sin(1e6 x)): such rows are
+# redone at steps SHORTEN_BY shorter, up to LONG_STEP_TIMES times, until they are not.
+LONG_STEP_SHARE = 0.1
+LONG_STEP_FLOOR = 1e-6
+LONG_STEP_TIMES = 8
+STEADY_KINK = 0.1
+
+
+def _too_long(numeric: Numeric, f0: float, scale: np.ndarray) -> np.ndarray:
+    """Rows whose step looks longer than the cost's length there (see LONG_STEP_SHARE)."""
+    est = numeric.estimates
+    with np.errstate(all="ignore"):
+        kinks = stencils.find_kinks(numeric.method, numeric.values, f0, numeric.h, est.noise)
+        rough = (est.gap > LONG_STEP_SHARE * np.abs(est.derivative)) & \
+            (est.gap > est.rounding) & (est.gap > LONG_STEP_FLOOR * abs(f0) / scale)
+    finite = np.isfinite(numeric.values.real).all(axis=1)
+    return (kinks.found | rough) & finite & ~numeric.failed, kinks
+
+
+def shorten_long_steps(setup: Setup, numeric: Numeric) -> Numeric:
+    """Rows whose step is too long for the cost there (_too_long): passes at steps
+    SHORTEN_BY shorter until the row is not, keeping each value whose error estimate is
+    smaller (or that left a kink behind).  A kink whose one-sided slopes stay put as the
+    step shrinks is a kink at the point itself (a ReLU at 0): it stops there."""
+    long, kinks = _too_long(numeric, setup.f0, setup.scale[numeric.coords])
+    if not long.any():
+        return numeric
+    out = numeric.copy()
+    rows = np.flatnonzero(long)
+    h = out.h[rows]
+    for _ in range(LONG_STEP_TIMES):
+        if rows.size == 0 or setup.runner.interrupted:
+            break
+        h = h / SHORTEN_BY
+        again = one_pass(setup, out.method, out.coords[rows], h)
+        still, new_kinks = _too_long(again, setup.f0, setup.scale[out.coords[rows]])
+        ok = np.isfinite(again.values.real).all(axis=1) & ~again.failed & again.done
+        old = out.estimates.take(rows)
+        was_kink = kinks.found[rows] if kinks.found.size == len(out.coords) else \
+            np.zeros(rows.size, dtype=bool)
+        # Relative errors: near a pole the value grows as the step shrinks.
+        with np.errstate(all="ignore"):
+            better = ok & ((again.estimates.error * np.abs(old.derivative) <
+                            old.error * np.abs(again.estimates.derivative)) |
+                           (was_kink & ~new_kinks.found))
+        _adopt(out, rows[better], again, np.flatnonzero(better))
+        # Steady: both slopes moved by less than a tenth of the jump between them.
+        jump = STEADY_KINK * np.abs(kinks.high[rows] - kinks.low[rows])
+        steady_kink = new_kinks.found & was_kink & \
+            (np.abs(new_kinks.low - kinks.low[rows]) <= jump) & \
+            (np.abs(new_kinks.high - kinks.high[rows]) <= jump)
+        rounding_bound = again.estimates.rounding >= again.estimates.truncation
+        go_on = ok & still & ~steady_kink & ~rounding_bound
+        kinks = _rows_kinks(kinks, rows, new_kinks, len(out.coords))
+        rows, h = rows[go_on], h[go_on]
+    return out
+
+
+def _rows_kinks(kinks: stencils.Kinks, rows, new: stencils.Kinks, n: int) -> stencils.Kinks:
+    """The kinks of all n rows, with those at `rows` replaced by `new`."""
+    found, low, high, slack = (np.array(a, dtype=float) for a in
+                               (kinks.found, kinks.low, kinks.high, kinks.slack))
+    found[rows], low[rows], high[rows], slack[rows] = new.found, new.low, new.high, new.slack
+    return stencils.Kinks(found.astype(bool), low, high, slack)
 
 
 def refine_steps(setup: Setup, numeric: Numeric) -> Numeric:
@@ -75,8 +153,8 @@ def refine_steps(setup: Setup, numeric: Numeric) -> Numeric:
     # The step balance uses the plain rounding bound of the stencil's values, not the
     # margins the error estimate adds (stencils.SUM_ROUNDING and the terms' rounding).
     rounding = stencils.VALUE_ROUNDING[numeric.method] * est.noise / numeric.h
-    redo = (est.gap > REFINE_ABOVE * terms) & (est.gap > 64 * rounding) & \
-        ~numeric.failed & finite
+    large = (est.gap > REFINE_ABOVE * terms) | (est.gap > REFINE_SHARE * np.abs(est.derivative))
+    redo = large & (est.gap > 64 * rounding) & ~numeric.failed & finite
     if not redo.any():
         return numeric
     idx = np.flatnonzero(redo)
@@ -98,9 +176,11 @@ def refine_steps(setup: Setup, numeric: Numeric) -> Numeric:
     truncation = first.truncation.copy()
     truncation[keep] = np.minimum(first.gap, distance + other.error)[keep]
     out.estimates.truncation[idx] = truncation
-    # Chosen second value: the distance between the two, or its own modelled error.
+    # Chosen second value: the distance between the two, or its own modelled error, but
+    # never above its own gap: a first value far off (a step much too long) says nothing
+    # about the second beyond what its own lower-order gap does (Ridders' bound).
     modelled = stencils.extrapolation_error(other, h2, numeric.method) - other.rounding
-    other.truncation = np.maximum(distance, modelled)
+    other.truncation = np.maximum(np.minimum(distance, other.gap), modelled)
     pos = np.flatnonzero(use)
     out.estimates.put(idx[pos], other.take(pos))
     out.h[idx[pos]] = h2[pos]
@@ -123,18 +203,20 @@ def redo_undefined(setup: Setup, numeric: Numeric) -> Numeric:
     first_values = numeric.values[bad].copy()
     h = numeric.h[bad].copy()
     todo = np.ones(bad.size, dtype=bool)
+    shortest = SHORTEST_ULPS * setup.eps[numeric.coords[bad]] * \
+        np.abs(np.nan_to_num(setup.base[numeric.coords[bad]]))
     for _ in range(SHORTEN_TIMES):
-        if not todo.any() or setup.runner.interrupted:
+        k = np.flatnonzero(todo & (h / SHORTEN_BY >= shortest))
+        if k.size == 0 or setup.runner.interrupted:
             break
-        h[todo] /= SHORTEN_BY
-        k = np.flatnonzero(todo)
+        h[k] /= SHORTEN_BY
         again = one_pass(setup, numeric.method, numeric.coords[bad[k]], h[k])
         fine = np.isfinite(again.values).all(axis=1) & ~again.failed & again.done
         _adopt(numeric, bad[k[fine]], again, np.flatnonzero(fine))
         # The first finite step may still reach close to where the cost is undefined (its
         # derivatives grow fast there): one step shorter again is used, trusted to within
         # the distance between the two values scaled by the stencil's order.
-        k_fine = k[fine]
+        k_fine = k[fine & (h[k] / SHORTEN_BY >= shortest[k])]
         if k_fine.size:
             inner = one_pass(setup, numeric.method, numeric.coords[bad[k_fine]],
                               h[k_fine] / SHORTEN_BY)
@@ -237,7 +319,8 @@ def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Nu
         bend = setup.line.largest_curvature_s2 if method in ("forward", "backward") \
             else setup.line.curvature_s2
         near = stencils.Near(setup.f0, setup.eps_f, setup.line.noise, bend / s ** 2,
-                             8 * setup.line.third / s ** 3)
+                             8 * setup.line.third / s ** 3,
+                             np.abs(np.nan_to_num(setup.base[coords])))
         est = stencils.combine(method, values, h, s, near)
     return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
 
@@ -252,5 +335,8 @@ def term_sizes(setup: Setup, numeric: Numeric, third: bool = False) -> np.ndarra
     est = numeric.estimates
     s = setup.scale[numeric.coords]
     slope = max(setup.line.slope, setup.line.third) if third else setup.line.slope
-    seen = np.maximum(est.curvature * s + setup.line.curvature_s2 / s, slope / s)
+    bend = stencils.line_hint(numeric.method, setup.line.curvature_s2 / s ** 2, est, setup.f0, s)
+    size = np.abs(np.nan_to_num(setup.base[numeric.coords]))
+    curvature = est.curvature + bend
+    seen = np.maximum(curvature * stencils.reach(est.derivative, curvature, s, size), slope / s)
     return stencils.term_scale(est.derivative, setup.f0, s, seen)
