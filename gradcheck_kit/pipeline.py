@@ -219,6 +219,10 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     """
     method = first.numeric.method
     failing = ("disagree", "non-finite") if method == "complex-step" else ("disagree",)
+    if not setup.noisy:
+        # Undecided rows of a noise-free cost were too far apart for the first method's
+        # error estimate (a one-sided step at a minimiser): a finer method may decide them.
+        failing += ("noisy",)
     rough = verdicts.rough_agreement(first.verdict, first.numeric.estimates)
     bad = np.flatnonzero(np.isin(first.verdict, failing) | rough)
     if method in stencils.REFINABLE or bad.size == 0 or setup.runner.interrupted:
@@ -227,9 +231,18 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
     again = compare(setup, numeric_derivatives(setup, "richardson", coords, h),
                     first.analytic, rtol, atol, analytic_eps)
-    # A mismatch stands unless Richardson settles it; a rough agreement is Richardson's
-    # to decide either way (its error is far smaller, and it can tell a kink).
-    settled = np.isin(again.verdict, ("agree", "kink")) | rough[bad]
+    # A mismatch stands unless Richardson settles it: it agrees (or finds a kink), and
+    # either its allowance is no looser than the first method's, or it shows the first
+    # value off by more than that value's own error estimate.  A looser recheck that
+    # agrees only because it knows less must not overrule a precise disagreement (a
+    # complex step's, on a coordinate whose cost varies on a length of 1e-3).  A rough
+    # agreement is Richardson's to decide either way (its error is far smaller, and it
+    # can tell a kink).
+    first_est, again_est = first.numeric.estimates.take(bad), again.numeric.estimates
+    shown_off = np.abs(first_est.derivative - again_est.derivative) > \
+        verdicts.SAFETY * first_est.error + again_est.error
+    no_looser = again.allowed <= first.allowed[bad]
+    settled = (np.isin(again.verdict, ("agree", "kink")) & (shown_off | no_looser)) | rough[bad]
     if not settled.any():
         return first
     numeric = first.numeric.copy()

@@ -2,7 +2,7 @@
 
 Default rule (no rtol / atol given).  A coordinate agrees when
 
-    |analytic - numeric| <= 2 * error_estimate + min(1000 * eps_f, 1e-3) * (|analytic| + terms)
+    |analytic - numeric| <= 2 * error_estimate + min(250 * eps_f, 1e-3) * (|analytic| + terms)
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
 rounding, from stencils.py).  The second part allows for rounding in the
@@ -26,7 +26,7 @@ import numpy as np
 VERDICTS = ("agree", "disagree", "kink", "noisy", "non-finite", "error")
 FAILING = ("disagree", "non-finite", "error")   # verdicts that fail a report
 SAFETY = 2.0
-ANALYTIC_ROUNDING = 1000.0
+ANALYTIC_ROUNDING = 250.0
 ANALYTIC_ROUNDING_CAP = 1e-3
 ANALYTIC_VALUE_ROUNDING = 16.0
 
@@ -117,6 +117,9 @@ def apply_kinks(verdict, analytic, kinks, allowed, details) -> np.ndarray:
 UNDECIDED_SHARE = 0.5
 # ... unless both values are this small next to the terms the entry is summed from.
 NEGLIGIBLE = 1e-3
+# A numeric value whose error estimate is at most this share of it is known well enough
+# that an analytic value half of it off (or more) disagrees, whatever the terms' size.
+RESOLVED_SHARE = 0.25
 
 
 def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -> np.ndarray:
@@ -125,13 +128,23 @@ def mark_undecided(verdict, analytic, est, terms, details, noisy, noise_level) -
     cost is noisy and noise dominates the estimate, or the two values differ by half
     their size or more (a quantized cost, a step far too long).  Values that are both
     tiny next to the terms they are summed from (a gradient entry near zero at a
-    minimiser: below NEGLIGIBLE of their terms) agree and stay."""
+    minimiser: below NEGLIGIBLE of their terms) agree and stay, unless the numeric value
+    is known to within a quarter of itself: then a relative error of a half or more is
+    no rounding of the analytic value, and the row disagrees (a zero gradient entry
+    where the cost has a clear slope, next to entries a million times larger)."""
     verdict = verdict.copy()
-    size = np.maximum(np.abs(analytic), np.abs(est.derivative))
-    far = (relative_error(analytic, est.derivative) >= UNDECIDED_SHARE) & \
-        ~(size <= NEGLIGIBLE * terms)
+    n = est.derivative
+    size = np.maximum(np.abs(analytic), np.abs(n))
+    apart = relative_error(analytic, n) >= UNDECIDED_SHARE
+    known = (est.error <= RESOLVED_SHARE * np.abs(n)) & (n != 0)
+    wrong = (verdict == "agree") & apart & known
+    far = apart & ~(size <= NEGLIGIBLE * terms)
     swamped = (est.error >= UNDECIDED_SHARE * size) & (est.rounding >= est.truncation) & noisy
-    undecided = (verdict == "agree") & (far | swamped)
+    undecided = (verdict == "agree") & (far | swamped) & ~wrong
+    for j in np.flatnonzero(wrong):
+        verdict[j] = "disagree"
+        details[j] = (f"the numeric value is known to within {est.error[j]:.2g}: the analytic "
+                      "value is off by half of it or more")
     for j in np.flatnonzero(undecided):
         verdict[j] = "noisy"
         details[j] = (f"noise {noise_level:.2g} swamps this derivative" if swamped[j] else
