@@ -26,7 +26,7 @@ import numpy as np
 
 from .errors import CheckInputError, CheckInterrupted, ExecutorError
 from .plan import check_executor
-from .tree import Layout, flatten, rebuild, rebuilder
+from .tree import Layout, coordinate_name, flatten, rebuild, rebuilder
 
 # Memory of one batch of a vectorized cost.  Far inside the 256 MB a batch may take:
 # measured on a 2-core machine (tests/benchmarks.py), 4 MiB batches, which stay in cache,
@@ -694,8 +694,19 @@ class CostRunner:
             raise CheckInputError("cost returned a complex number at real parameters; "
                                   "expected a real scalar")
         if not math.isfinite(value):
-            raise CheckInputError(f"cost returned {value} {label}; expected a finite number")
+            raise CheckInputError(f"cost returned {value} {label}; expected a finite number"
+                                  + self._non_finite_params())
         return value, after
+
+    def _non_finite_params(self) -> str:
+        """Where params themselves hold nan or inf: the likely reason, for the message."""
+        with np.errstate(invalid="ignore"):
+            bad = np.flatnonzero(~np.isfinite(self.base))
+        if bad.size == 0:
+            return ""
+        names = [coordinate_name(self.layout, int(i)) for i in bad[:3]]
+        more = f" and {bad.size - 3} more" if bad.size > 3 else ""
+        return f" (params hold non-finite entries: {', '.join(names)}{more})"
 
     def changed_leaves(self, after) -> list:
         """Names of the parameters that the last base call changed in place."""

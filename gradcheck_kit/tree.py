@@ -177,6 +177,17 @@ def flatten(params: Any, what: str = "params") -> tuple:
     return vector, Layout(tuple(leaves), skeleton, offset)
 
 
+def _outline(skeleton, leaves) -> str:
+    """The top of a structure in words, for messages: 'a bare array', 'a dict with keys
+    ['a', 'b'] (leaves ...)'."""
+    if skeleton[0] == "leaf":
+        return "a bare array"
+    top = f"a {skeleton[1].__name__}"
+    top += f" with keys {list(map(str, skeleton[2]))}" if skeleton[0] == "dict" else \
+        f" of {len(skeleton[3])} items"
+    return f"{top} (leaves {leaves})"
+
+
 def flatten_like(tree: Any, layout: Layout, what: str) -> np.ndarray:
     """Flatten `tree`, which must have the structure and shapes of `layout`.
 
@@ -196,7 +207,8 @@ def flatten_like(tree: Any, layout: Layout, what: str) -> np.ndarray:
         [_leaf_name(_by_position(p, skeleton)) for p, _, _ in found]
     if _shape_of(skeleton) != _shape_of(layout.skeleton) or not same:
         raise CheckInputError(
-            f"{what} has a different structure from params: expected leaves {expected}, got {got}")
+            f"{what} has a different structure from params: expected "
+            f"{_outline(layout.skeleton, expected)}, got {_outline(skeleton, got)}")
     vector = np.empty(layout.size, dtype=np.float64)
     for leaf, (_, array, _) in zip(layout.leaves, found):
         if tuple(array.shape) != leaf.shape:

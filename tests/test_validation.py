@@ -219,3 +219,28 @@ def test_library_code_does_not_print_warnings_go_through_warnings(capfd):
     out, err = capfd.readouterr()
     assert out == "" and err == ""
     assert any("numeric_gradient" in str(w.message) for w in caught)
+
+
+def test_a_nan_in_params_is_named_when_the_cost_is_not_finite_there():
+    params = {"a": np.ones(2), "b": np.array([np.nan, 1.0])}
+    kept = copy.deepcopy(params)
+    with pytest.raises(CheckInputError, match=r"cost returned nan at the base point.*"
+                                              r"params hold non-finite entries: b\[0\]"):
+        gk.compare_gradient(lambda p: np.sum(p["a"]) + np.sum(p["b"]), params,
+                            lambda p: {"a": np.ones(2), "b": np.ones(2)})
+    assert np.array_equal(params["b"], kept["b"], equal_nan=True)
+
+
+def test_a_gradient_dict_for_a_bare_array_says_both_structures():
+    with pytest.raises(CheckInputError, match=r"gradient has a different structure from "
+                                              r"params: expected a bare array, got a dict "
+                                              r"with keys \['x'\]"):
+        gk.compare_gradient(lambda x: np.sum(x ** 2), np.ones(3), {"x": np.ones(3)})
+
+
+def test_a_gradient_with_other_keys_names_the_keys_of_both():
+    with pytest.raises(CheckInputError, match=r"expected a dict with keys \['a', 'b'\].*"
+                                              r"got a dict with keys \['a', 'c'\]"):
+        gk.compare_gradient(lambda p: np.sum(p["a"]) + np.sum(p["b"]),
+                            {"a": np.ones(2), "b": np.ones(2)},
+                            lambda p: {"a": np.ones(2), "c": np.ones(2)})
