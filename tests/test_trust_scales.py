@@ -1,0 +1,150 @@
+"""Issue 9, second round: verdicts where coordinates vary on very different lengths.
+
+Each case was seen to pass a wrong gradient or to flag a right one before the fix: a
+coordinate next to a pole (its cost varies on a length of 1e-7 while the others vary on
+1), a column scaled by 1e3, a zero gradient entry next to entries a million times larger,
+a one-sided step at a minimiser.  Sources are named beside each case; "common practice"
+marks a fact of the trade.
+"""
+import numpy as np
+import pytest
+from scipy.special import gammaln, ndtri, psi
+from scipy.stats import norm
+
+import gradcheck_kit as gk
+from mgh_problems import BY_NAME
+
+FACTOR = 1.001       # a 0.1% error, the size a planted-bug corpus hides
+
+
+def _verdicts(report):
+    return {row.name: row.verdict for row in report.rows}
+
+
+# --- a coordinate next to a pole ---------------------------------------------------------
+# d/dx log Gamma(x) = psi(x) (DLMF 5.2.2); both through scipy.special.  At x = 1e-7 the
+# cost varies on a length of 1e-7 (psi(x) ~ -1/x there, DLMF 5.7.6), the others on 1.
+POLE_X = np.array([1e-7, 0.5, 3.0])
+
+
+def _gammaln_sum(x):
+    return np.sum(gammaln(x))
+
+
+@pytest.mark.parametrize("method", ["auto", "richardson", "five-point"])
+def test_gammaln_next_to_its_pole_passes_its_right_gradient(method):
+    report = gk.compare_gradient(_gammaln_sum, POLE_X, psi, method=method)
+    assert report.passed, report.to_text()
+
+
+@pytest.mark.parametrize("method", ["auto", "richardson", "five-point"])
+def test_a_small_error_next_to_a_pole_is_caught_on_every_coordinate(method):
+    report = gk.compare_gradient(_gammaln_sum, POLE_X, lambda x: psi(x) * FACTOR,
+                                 method=method)
+    assert set(_verdicts(report).values()) == {"disagree"}, report.to_text()
+
+
+def test_a_zero_gradient_next_to_a_pole_fails_everywhere():
+    report = gk.compare_gradient(_gammaln_sum, POLE_X, np.zeros_like)
+    assert set(_verdicts(report).values()) == {"disagree"}, report.to_text()
+
+
+# --- an inverse function whose slope is 1e9 ----------------------------------------------
+# d/dp ndtri(p) = 1 / phi(ndtri(p)) (inverse function rule, common practice); ndtri and
+# the normal density from scipy.  At p = 1e-10 a step of 1e-10 already leaves the domain.
+P = np.array([1e-10, 0.3, 0.9])
+
+
+def _ndtri_slope(p):
+    return 1 / norm.pdf(ndtri(p))
+
+
+def test_ndtri_at_a_tiny_probability_passes_and_a_small_error_fails():
+    def cost(p):
+        return np.sum(ndtri(p))
+    right = gk.compare_gradient(cost, P, _ndtri_slope)
+    assert right.passed, right.to_text()
+    off = gk.compare_gradient(cost, P, lambda p: _ndtri_slope(p) * FACTOR)
+    assert set(_verdicts(off).values()) == {"disagree"}, off.to_text()
+
+
+# --- coordinates a million times apart in scale ------------------------------------------
+# d/dx sin(c x) = c cos(c x) (common practice), with c from 1e6 down to 1e-6.
+C = np.array([1e6, 1.0, 1e-6])
+X0 = np.array([1e-6, 0.5, 2e5])
+
+
+def _sines(x):
+    return np.sum(np.sin(C * x))
+
+
+def _sines_slope(x):
+    return C * np.cos(C * x)
+
+
+def test_sines_of_very_different_frequencies_pass_their_right_gradient():
+    report = gk.compare_gradient(_sines, X0, _sines_slope)
+    assert report.passed, report.to_text()
+
+
+def test_a_zero_entry_next_to_entries_a_million_times_larger_disagrees():
+    # The small entry (about 1e-6) is known to far better than half of itself: a zero
+    # there is wrong however large the other entries are.
+    report = gk.compare_gradient(_sines, X0, np.zeros_like)
+    assert set(_verdicts(report).values()) == {"disagree"}, report.to_text()
+
+
+def test_a_small_error_on_the_large_entries_of_mixed_scales_is_caught():
+    # Left alone (see the issue note): the 1e-6 entry's 0.1% error is below the
+    # allowance made from the largest entry's size.
+    verdicts = _verdicts(gk.compare_gradient(_sines, X0, lambda x: _sines_slope(x) * FACTOR))
+    assert verdicts["x[0]"] == verdicts["x[1]"] == "disagree", verdicts
+
+
+# --- a logistic loss with one column scaled by 1e3 ---------------------------------------
+# d/dw sum(log(1 + e^z) - y z), z = X w, is X^T (sigmoid(z) - y) (common practice).
+_rng = np.random.default_rng(0)
+FEATURES = _rng.normal(size=(50, 4))
+FEATURES[:, 2] *= 1e3
+LABELS = (_rng.random(50) < 0.5).astype(float)
+W0 = _rng.normal(size=4) * 1e-3
+
+
+def _logistic(w):
+    z = FEATURES @ w
+    return np.sum(np.log1p(np.exp(z)) - LABELS * z)
+
+
+def _logistic_slope(w, factor=1.0):
+    g = FEATURES.T @ (1 / (1 + np.exp(-(FEATURES @ w))) - LABELS)
+    g[2] *= factor
+    return g
+
+
+@pytest.mark.parametrize("method", ["auto", "complex-step", "richardson"])
+def test_a_small_error_on_a_scaled_column_is_caught(method):
+    report = gk.compare_gradient(_logistic, W0, lambda w: _logistic_slope(w, FACTOR),
+                                 method=method)
+    assert _verdicts(report)["x[2]"] == "disagree", report.to_text()
+    right = gk.compare_gradient(_logistic, W0, _logistic_slope, method=method)
+    assert right.passed, right.to_text()
+
+
+def test_a_looser_recheck_does_not_overrule_a_precise_disagreement():
+    # The complex step knows x[2] to about 1e-11 and sees it 1.1 off; real differences on
+    # this column know it only to about 1: their agreement must not settle the row.
+    report = gk.compare_gradient(_logistic, W0, lambda w: _logistic_slope(w, FACTOR))
+    assert report.method == "complex-step"
+    row = next(r for r in report.rows if r.name == "x[2]")
+    assert row.verdict == "disagree" and row.error_estimate < 1e-6, report.to_text()
+
+
+# --- one-sided differences at a minimiser ------------------------------------------------
+# Extended Powell singular function (More, Garbow & Hillstrom 1981, problem 22) at its
+# minimiser 0, where the gradient is exactly 0 and a forward difference is h * f''/2.
+@pytest.mark.parametrize("method", ["forward", "backward"])
+def test_one_sided_differences_at_a_minimiser_raise_no_alarm(method):
+    problem = BY_NAME["extended_powell"]
+    x = np.zeros(problem.n)
+    report = gk.compare_gradient(problem.cost, x, np.zeros_like, method=method)
+    assert report.counts == {"agree": problem.n}, report.to_text()
