@@ -145,17 +145,29 @@ SHORTER_SPACING = 1 / 16
 SHORTER_TRIES = 3
 
 
+def _too_noisy(features, f0: float) -> bool:
+    """A level above LARGEST_RELATIVE_NOISE of the cost, where no step would give a
+    useful derivative: more likely a change on a length shorter than the spacing than
+    noise.  (Smaller levels stay noise: 1e-8 sin(1e8 x) on a cost of 10 is smooth on
+    1e-9, as tanh(x / 1e-6) is on 1e-7, and only its size tells the two apart.)"""
+    return features.noise > LARGEST_RELATIVE_NOISE * abs(f0)
+
+
 def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread) -> tuple:
-    """(values, features, direction) of a line, measured again at shorter spacings while
-    its table does not settle at the first: the cost may vary on a length shorter than the spacing
-    along v (a pole or a fast oscillation near the point), whose smooth change passed
-    for noise (0.5 for gammaln at 1e-7).  The shorter line is taken where its level is
-    less than half: noise that is really there keeps its level at any spacing."""
+    """(values, features, direction) of a line, measured again at shorter spacings where
+    its table does not settle, or settles at a level too large for noise (_too_noisy): the
+    cost may vary on a length shorter than the spacing along v (a pole or a fast
+    oscillation near the point, gammaln at 1e-6, tanh(x / 1e-6)), whose smooth change
+    passes for noise.  The shorter line is taken where its level is less than half:
+    noise that is really there keeps its level at any spacing (one more line, 8
+    evaluations, for a cost that is that noisy)."""
     best = (values, features)
-    if features.settled:
+    unsettled = not features.settled
+    if not unsettled and not _too_noisy(features, f0):
         return best + (v,)
-    # Every shorter spacing is tried: a line across a pole can look like steady noise at
-    # one of them (gammaln at 1e-7, spacing 7e-8), the same level as the line before.
+    # An unsettled line tries every shorter spacing: a line across a pole can look like
+    # steady noise at one of them (gammaln at 1e-7, spacing 7e-8), the same level as the
+    # line before.  A settled one stops where the level holds.
     for _ in range(SHORTER_TRIES):
         spacing *= SHORTER_SPACING
         values = _line_values(runner, v, spacing, f0)
@@ -164,6 +176,8 @@ def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread) 
         features = stencils.line_features(values, spacing, spread)
         if features.noise < 0.5 * best[1].noise:
             best = (values, features)
+        elif not unsettled:
+            break
     return best + (v,)
 
 
