@@ -107,6 +107,7 @@ def shorten_long_steps(setup: Setup, numeric: Numeric) -> Numeric:
     out = numeric.copy()
     rows = np.flatnonzero(long)
     h = out.h[rows]
+    moved = np.zeros(rows.size)     # how far the slopes moved at the last shortening
     for _ in range(LONG_STEP_TIMES):
         if rows.size == 0 or setup.runner.interrupted:
             break
@@ -123,16 +124,81 @@ def shorten_long_steps(setup: Setup, numeric: Numeric) -> Numeric:
                             old.error * np.abs(again.estimates.derivative)) |
                            (was_kink & ~new_kinks.found))
         _adopt(out, rows[better], again, np.flatnonzero(better))
-        # Steady: both slopes moved by less than a tenth of the jump between them.
+        # Steady: both slopes moved by less than a tenth of the jump between them, and by
+        # no more than at the shortening before (within their slack).  At a kink the
+        # slopes settle as the step shrinks (by h |f2|); a smooth cost that bends on a
+        # length L shorter than the step (sqrt(x^2 + 1e-12)) looks kinked too, but its
+        # slopes move by about L / h, more at each shorter step.
         jump = STEADY_KINK * np.abs(kinks.high[rows] - kinks.low[rows])
-        steady_kink = new_kinks.found & was_kink & \
-            (np.abs(new_kinks.low - kinks.low[rows]) <= jump) & \
-            (np.abs(new_kinks.high - kinks.high[rows]) <= jump)
-        rounding_bound = again.estimates.rounding >= again.estimates.truncation
+        move = np.maximum(np.abs(new_kinks.low - kinks.low[rows]),
+                          np.abs(new_kinks.high - kinks.high[rows]))
+        steady_kink = new_kinks.found & was_kink & (move <= jump) & \
+            (move <= np.maximum(moved, new_kinks.slack))
+        # Rounding ends the search, except for a kink whose slopes still move: its
+        # rounding may be a bend on a short length that the noise line took for noise.
+        rounding_bound = (again.estimates.rounding >= again.estimates.truncation) & \
+            ~(new_kinks.found & was_kink)
         go_on = ok & still & ~steady_kink & ~rounding_bound
         kinks = _rows_kinks(kinks, rows, new_kinks, len(out.coords))
-        rows, h = rows[go_on], h[go_on]
+        rows, h, moved = rows[go_on], h[go_on], move[go_on]
     return out
+
+
+# A mismatch whose step is more than LENGTH_TIMES the length its cost varies on there,
+# |f1| / |f2| from its own stencil, is measured again at steps SHORTEN_BY shorter, up to
+# LONG_STEP_TIMES times, until two in a row agree within their errors: a parameter of
+# natural size 1e-6 at x = 7e-7 gets the automatic step of 5e-4 (sized on max(|x|, 1)),
+# over which log1p((x / 1e-6)^2) looks like a quadratic whose differences all agree.
+LENGTH_TIMES = 8.0
+
+
+def long_for_length(numeric: Numeric) -> np.ndarray:
+    """Rows whose step is more than LENGTH_TIMES the cost's length |f1| / |f2| there."""
+    est = numeric.estimates
+    with np.errstate(all="ignore"):
+        length = np.abs(est.derivative) / est.curvature
+    return (numeric.h > LENGTH_TIMES * length) & np.isfinite(est.derivative) & \
+        ~numeric.failed
+
+
+def walk_down(setup: Setup, numeric: Numeric, rows: np.ndarray) -> tuple:
+    """Richardson values of numeric's `rows` at steps SHORTEN_BY shorter each time, until
+    two in a row agree within their errors, and on while the step error dominates.
+    Returns (Numeric of those rows, converged): each row's value at its last step
+    taken, and whether two in a row agreed."""
+    h = numeric.h[rows].copy()
+    coords = numeric.coords[rows]
+    last = one_pass(setup, "richardson", coords, h)   # the same step, in Richardson
+    out = last.copy()
+    converged = np.zeros(rows.size, dtype=bool)
+    todo = np.arange(rows.size)
+    for _ in range(LONG_STEP_TIMES):
+        if todo.size == 0 or setup.runner.interrupted:
+            break
+        h[todo] /= SHORTEN_BY
+        again = one_pass(setup, "richardson", coords[todo], h[todo])
+        ok = np.isfinite(again.values.real).all(axis=1) & ~again.failed & again.done
+        prev, new = last.estimates.take(todo), again.estimates
+        distance = np.abs(new.derivative - prev.derivative)
+        agree = ok & (distance <= new.error + prev.error)
+        # The shorter step's value, trusted to the distance between the two shrunk as a
+        # second-order error would shrink (Richardson's is fourth-order: conservative).
+        new.truncation = np.where(agree, np.maximum(new.truncation,
+                                                    distance / SHORTEN_BY ** 2),
+                                  new.truncation)
+        # A settled row takes a shorter step only where it agrees again, more tightly.
+        was = converged[todo]
+        take = ok & (~was | (agree & (new.error < out.estimates.error[todo])))
+        pick = np.flatnonzero(take)
+        out.estimates.put(todo[pick], new.take(pick))
+        out.h[todo[pick]] = h[todo[pick]]
+        out.values[todo[pick]] = again.values[pick]
+        last.estimates.put(todo[ok], new.take(np.flatnonzero(ok)))
+        converged[todo[agree]] = True
+        # Settled rows go on while step error, not rounding, dominates: it shrinks fast.
+        go_on = ok & ((~agree & ~was) | (take & agree & (new.rounding < new.truncation)))
+        todo = todo[go_on]
+    return out, converged
 
 
 def _rows_kinks(kinks: stencils.Kinks, rows, new: stencils.Kinks, n: int) -> stencils.Kinks:

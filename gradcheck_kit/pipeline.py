@@ -22,7 +22,7 @@ from .evaluate import CostRunner, SeededCall, draw_seed
 from .frameworks import takes_framework_values
 from .hints import central_error, central_tolerances, uphill_hint
 from .hints import hints as mismatch_hints
-from .numeric import Numeric, numeric_derivatives, term_sizes
+from .numeric import Numeric, long_for_length, numeric_derivatives, term_sizes, walk_down
 from .probes import Setup
 from .reevaluate import Reevaluation, remainder_along
 from .report import GradientReport, RowColumns, outside_note
@@ -247,6 +247,7 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
         return first
     numeric = first.numeric.copy()
     numeric.estimates.put(bad[settled], again.numeric.estimates.take(np.flatnonzero(settled)))
+    numeric.h[bad[settled]] = again.numeric.h[settled]
     verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
     verdict[bad[settled]] = again.verdict[settled]
     allowed[bad[settled]] = again.allowed[settled]
@@ -259,6 +260,31 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
         notes.append(say.rechecked(agreed, method))
     return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details,
                    notes=notes)
+
+
+def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
+                  analytic_eps=None) -> Comparison:
+    """Recheck mismatches whose automatic step is long for the length the cost varies on
+    there (numeric.long_for_length) with Richardson at ever shorter steps: where the
+    values settle, they and their verdict replace the row's.  Only mismatches pay for
+    this: a false alarm costs a user more than the evaluations."""
+    bad = np.flatnonzero((first.verdict == "disagree") & long_for_length(first.numeric))
+    if bad.size == 0 or setup.runner.interrupted:
+        return first
+    shorter, settled = walk_down(setup, first.numeric, bad)
+    if not settled.any():
+        return first
+    again = compare(setup, shorter, first.analytic, rtol, atol, analytic_eps)
+    numeric = first.numeric.copy()
+    rows, at = bad[settled], np.flatnonzero(settled)
+    numeric.estimates.put(rows, shorter.estimates.take(at))
+    numeric.h[rows] = shorter.h[at]
+    verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
+    verdict[rows], allowed[rows] = again.verdict[at], again.allowed[at]
+    for j, k in zip(rows, at):
+        details[j] = again.details[k] or (f"step shortened to {shorter.h[k]:.3g}: the cost "
+                                          "varies on a shorter length here")
+    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details)
 
 
 def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
@@ -384,6 +410,8 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
     numeric = numeric_derivatives(setup, used, coords, h, refine=step is None)
     comp = compare(setup, numeric, analytic, rtol, atol, analytic_eps)
     comp = second_opinion(setup, comp, rtol, atol, analytic_eps)
+    if step is None:
+        comp = shorter_steps(setup, comp, rtol, atol, analytic_eps)
     report = finish(setup, comp, used, analytic_eps=analytic_eps,
                     allow_undecided=allow_undecided,
                     probe_unsampled=_worth_probing(setup.layout.size - coords.size, used),
