@@ -2,7 +2,7 @@
 
 Default rule (no rtol / atol given).  A coordinate agrees when
 
-    |analytic - numeric| <= 2 * error_estimate + min(250 * eps_f, 1e-3) * (|analytic| + terms)
+    |analytic - numeric| <= 2 * error_estimate + min(1000 * eps_f, 1e-3) * (|analytic| + terms)
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
 rounding, from stencils.py).  The second part allows for rounding in the
@@ -26,7 +26,7 @@ import numpy as np
 VERDICTS = ("agree", "disagree", "kink", "noisy", "non-finite", "error")
 FAILING = ("disagree", "non-finite", "error")   # verdicts that fail a report
 SAFETY = 2.0
-ANALYTIC_ROUNDING = 250.0
+ANALYTIC_ROUNDING = 1000.0
 ANALYTIC_ROUNDING_CAP = 1e-3
 ANALYTIC_VALUE_ROUNDING = 16.0
 

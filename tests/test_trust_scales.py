@@ -148,3 +148,53 @@ def test_one_sided_differences_at_a_minimiser_raise_no_alarm(method):
     x = np.zeros(problem.n)
     report = gk.compare_gradient(problem.cost, x, np.zeros_like, method=method)
     assert report.counts == {"agree": problem.n}, report.to_text()
+
+
+# --- a cost that varies on a length far below its automatic step ------------------------
+# The automatic step is sized on max(|x|, 1); near 0 a cost can vary on 1e-6.
+def test_gammaln_at_1e_6_is_not_taken_for_a_noisy_cost():
+    # A noise line that crosses the pole at 0 looks like noise of 2 on a cost of 14: a
+    # level too large for noise is measured again on a shorter line (DLMF 5.2.2 as above).
+    x = np.array([1e-6, 3.0])
+    right = gk.compare_gradient(_gammaln_sum, x, psi)
+    assert right.passed, right.to_text()
+    off = gk.compare_gradient(_gammaln_sum, x, lambda v: psi(v) * FACTOR)
+    assert _verdicts(off)["x[0]"] == "disagree", off.to_text()
+
+
+@pytest.mark.parametrize("method", ["auto", "central", "richardson"])
+def test_tanh_on_a_length_of_1e_6_passes_its_right_gradient(method):
+    # d/dx tanh(x / L) = (1 - tanh(x / L)^2) / L (common practice).
+    length = 1e-6
+    x = np.array([0.7e-6])
+    right = gk.compare_gradient(lambda v: np.sum(np.tanh(v / length)), x,
+                                lambda v: (1 - np.tanh(v / length) ** 2) / length,
+                                method=method)
+    assert right.passed, right.to_text()
+
+
+# A parameter of natural size 1e-6 beside others of size 1e-3 .. 1e4: the cost is written in
+# u = x / size, and d/dx = (d/du) / size (chain rule, common practice).
+SIZES = np.array([1e-6, 1e-3, 1.0, 1e2, 1e4])
+X_SIZED = SIZES * np.array([0.7, -1.3, 0.4, 2.1, -0.6])
+COUPLING = np.eye(5) + 0.2 * (np.eye(5, k=1) + np.eye(5, k=-1))
+
+
+def _sized(x):
+    u = x / SIZES
+    return np.sum(np.log1p(u ** 2)) + 0.3 * u @ COUPLING @ u + np.sum(np.sin(u))
+
+
+def _sized_gradient(x):
+    u = x / SIZES
+    return (2 * u / (1 + u ** 2) + 0.6 * COUPLING @ u + np.cos(u)) / SIZES
+
+
+@pytest.mark.parametrize("method", ["auto", "central", "richardson"])
+def test_a_parameter_of_natural_size_1e_6_passes_and_its_small_error_is_caught(method):
+    right = gk.compare_gradient(_sized, X_SIZED, _sized_gradient, method=method)
+    assert right.passed, right.to_text()
+    assert "step shortened" in right.to_text()
+    off = gk.compare_gradient(_sized, X_SIZED, lambda v: _sized_gradient(v) * FACTOR,
+                              method=method)
+    assert _verdicts(off)["x[0]"] == "disagree", off.to_text()
