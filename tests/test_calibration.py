@@ -19,6 +19,7 @@ import numpy as np
 import pytest
 
 import calibration_corpus as corpus
+import gradcheck_kit as gk
 import mgh_problems
 
 BAR = 0.998
@@ -214,3 +215,19 @@ def test_mgh_exact_gradients_match_sympy(name):
             other = mgh_problems.exact_gradient(name, case.point)
             allowed = 1e-14 * np.max(np.abs(exact)) + 1e-2 * gradient_floor(case)
             assert np.max(np.abs(other - exact)) <= allowed, (case.name, other, exact)
+
+
+# Gradients of record carry their own float64 rounding, unlike the exact values above.
+# Known and left alone: 2 x erfcx(x) - 2 / sqrt(pi) (special/erfcx/large) cancels, losing up
+# to 5 digits at x >= 600; where the complex step sees that loss it reports it.
+@pytest.mark.parametrize("method", ["central", "richardson"])
+def test_gradients_of_record_raise_no_alarm(method):
+    alarms = []
+    for case in WITH_RECORD:
+        record = np.asarray(case.library_gradient(case.point.copy()), dtype=float)
+        report = gk.compare_gradient(case.cost, case.point.copy(),
+                                     gradient=lambda _x, r=record: r.copy(),
+                                     method=method)
+        alarms += [(case.name, row.name, row.verdict) for row in report.rows
+                   if row.verdict != "agree"]
+    assert alarms == [], alarms[:10]
