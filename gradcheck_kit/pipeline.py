@@ -262,16 +262,32 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
                    notes=notes)
 
 
+# An agreement whose error estimate is above this share of the value is loose: a 0.1%
+# error in the analytic value would pass it.
+LOOSE = 1e-4
+
+
 def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
                   analytic_eps=None) -> Comparison:
-    """Recheck mismatches whose automatic step is long for the length the cost varies on
-    there (numeric.long_for_length) with Richardson at ever shorter steps: where the
-    values settle, they and their verdict replace the row's.  Only mismatches pay for
-    this: a false alarm costs a user more than the evaluations."""
-    bad = np.flatnonzero((first.verdict == "disagree") & long_for_length(first.numeric))
+    """Recheck with Richardson at ever shorter steps the rows that disagree with an
+    automatic step long for the length the cost varies on there (numeric.long_for_length),
+    and the rows that agree only loosely (an error estimate above LOOSE of the value,
+    where a 0.1% error would pass: a central difference next to a pole).  Where the values
+    settle, with a smaller error, they and their verdict replace the row's.  Only these
+    rows pay: a false alarm or a missed error costs a user more than the evaluations."""
+    est = first.numeric.estimates
+    # Loose from step error (shorter steps help), not from noise or rounding (they do not);
+    # a value smaller than its error (a zero gradient at a minimiser) is no loose value.
+    # One-sided differences are loose by design (their users chose one evaluation each).
+    size = np.abs(est.derivative)
+    loose = (first.verdict == "agree") & (est.error > LOOSE * size) & (est.error < size) & \
+        (est.truncation > est.rounding) & (first.numeric.method not in ("forward", "backward"))
+    bad = np.flatnonzero(((first.verdict == "disagree") & long_for_length(first.numeric)) |
+                         loose)
     if bad.size == 0 or setup.runner.interrupted:
         return first
     shorter, settled = walk_down(setup, first.numeric, bad)
+    settled &= shorter.estimates.error < est.error[bad]
     if not settled.any():
         return first
     again = compare(setup, shorter, first.analytic, rtol, atol, analytic_eps)
