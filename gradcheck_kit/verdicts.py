@@ -2,7 +2,10 @@
 
 Default rule (no rtol / atol given).  A coordinate agrees when
 
-    |analytic - numeric| <= 2 * error_estimate + min(1000 * eps_f, 1e-3) * (|analytic| + terms)
+    |analytic - numeric| <= 2 * error_estimate + share * (|analytic| + terms)
+
+    share = min(1000 * eps_f, 1e-3, max(3e-5, 10 * eps_f)): 1000 eps_f for float64, 250
+    for float32, 1e-3 (1 eps) for float16
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
 rounding, from stencils.py).  The second part allows for rounding in the
@@ -27,6 +30,13 @@ VERDICTS = ("agree", "disagree", "kink", "noisy", "non-finite", "error")
 FAILING = ("disagree", "non-finite", "error")   # verdicts that fail a report
 SAFETY = 2.0
 ANALYTIC_ROUNDING = 1000.0
+# ... but no more than ANALYTIC_ROUNDING_SHARE (or ANALYTIC_ROUNDING_LOW eps where that is
+# larger), and never above ANALYTIC_ROUNDING_CAP: a float64 formula may cancel 1000-fold
+# and still be right (2 x erfcx(x) - 2 / sqrt(pi) at x = 20), while 1000 float32
+# epsilons, 1.2e-4, would hide a 0.1% error in a float32 loss; in float16 the numeric
+# error estimates decide.
+ANALYTIC_ROUNDING_SHARE = 3e-5
+ANALYTIC_ROUNDING_LOW = 10.0
 ANALYTIC_ROUNDING_CAP = 1e-3
 ANALYTIC_VALUE_ROUNDING = 16.0
 
@@ -39,7 +49,8 @@ def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, ato
     float64 cost carries float32 rounding).
     """
     if rtol is None and atol is None:
-        share = min(ANALYTIC_ROUNDING * eps_f, ANALYTIC_ROUNDING_CAP)
+        share = min(ANALYTIC_ROUNDING * eps_f, ANALYTIC_ROUNDING_CAP,
+                    max(ANALYTIC_ROUNDING_SHARE, ANALYTIC_ROUNDING_LOW * eps_f))
         if eps_a is not None and eps_a > eps_f:
             # Values stored in a lower precision than the cost's carry its rounding on top:
             # about eps_a relative to what they are summed from, no more, so that a 0.1%

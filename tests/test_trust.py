@@ -313,3 +313,26 @@ def test_a_cost_flat_near_the_point_but_not_rounded_passes_its_zero_gradient(nam
 def test_looks_quantized_tells_steps_from_plateaus(values, expected):
     from gradcheck_kit.stencils import looks_quantized
     assert looks_quantized(np.array(values, dtype=float) * 1e-3 + 1.0) is expected
+
+
+# --- the analytic allowance follows the precision: 1000 eps in float64, 250 in float32 -------
+def test_a_small_error_in_a_float32_layer_is_caught():
+    # A float32 layer sum(tanh(A x)^2) with its float32 gradient A^T (2 t (1 - t^2))
+    # (chain rule, common practice): 1000 float32 epsilons of the terms would let this
+    # 0.1% error through; the complex step (auto) sees it.
+    rng = np.random.default_rng(1)
+    a = rng.normal(size=(6, 6)).astype(np.float32)
+    x = rng.normal(size=6).astype(np.float32)
+
+    def cost(v):
+        return np.sum(np.tanh(a @ v) ** 2)
+
+    def gradient(v, factor=1.0):
+        t = np.tanh(a @ v)
+        g = a.T @ (2 * t * (1 - t ** 2))
+        g[1] *= np.float32(factor)
+        return g
+    right = gk.compare_gradient(cost, x, gradient)
+    assert right.passed, right.to_text()
+    off = gk.compare_gradient(cost, x, lambda v: gradient(v, 1.001))
+    assert [r.name for r in off.mismatches] == ["x[1]"], off.to_text()
