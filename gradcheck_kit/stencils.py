@@ -559,16 +559,25 @@ def _table_orders(f):
         yield k, math.sqrt(gamma * mean), max(diffs) > 0 and min(diffs) < 0
 
 
-def _difference_table_levels(f) -> tuple:
-    """(level, order) of values f scaled to at most 1 in size, all finite (so no
-    difference overflows or is NaN, and max / min say whether any is > 0 / < 0)."""
+def _first_consistent(f) -> tuple:
+    """(the first consistent order's (k, sigma_k, changes) or None, every order seen) of
+    values f scaled to at most 1 in size.  It stops as soon as an order's next two are
+    known: the orders above it cannot change the answer (it is nonzero, so not all
+    vanish)."""
     sigmas = []
     for item in _table_orders(f):
         sigmas.append(item)
-        # The first consistent order, as soon as its next two are known: the orders
-        # above it cannot change the answer (it is nonzero, so not all vanish).
         if len(sigmas) >= 3 and _consistent(*sigmas[-3:]):
-            return sigmas[-3][1], sigmas[-3][0]
+            return sigmas[-3], sigmas
+    return None, sigmas
+
+
+def _difference_table_levels(f) -> tuple:
+    """(level, order) of values f scaled to at most 1 in size, all finite (so no
+    difference overflows or is NaN, and max / min say whether any is > 0 / < 0)."""
+    found, sigmas = _first_consistent(f)
+    if found is not None:
+        return found[1], found[0]
     if all(s == 0 for _, s, _ in sigmas):
         return 0.0, 0
     # No consistent order: the smallest spread seen bounds the noise from above.
@@ -586,12 +595,7 @@ def table_settles(f: list, level: float) -> bool:
     size = max((abs(v) for v in f), default=0.0)
     if not level > ROUNDING_CHANGE * np.finfo(float).eps * size:
         return True
-    sigmas = []
-    for item in _table_orders([v / size for v in f]):
-        sigmas.append(item)
-        if len(sigmas) >= 3 and _consistent(*sigmas[-3:]):
-            return True
-    return False
+    return _first_consistent([v / size for v in f])[0] is not None
 
 
 def _consistent(first, second, third) -> bool:
