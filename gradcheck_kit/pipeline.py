@@ -245,21 +245,27 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     settled = (np.isin(again.verdict, ("agree", "kink")) & (shown_off | no_looser)) | rough[bad]
     if not settled.any():
         return first
-    numeric = first.numeric.copy()
-    numeric.estimates.put(bad[settled], again.numeric.estimates.take(np.flatnonzero(settled)))
-    numeric.h[bad[settled]] = again.numeric.h[settled]
-    verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
-    verdict[bad[settled]] = again.verdict[settled]
-    allowed[bad[settled]] = again.allowed[settled]
-    for j, k in zip(bad[settled], np.flatnonzero(settled)):
-        details[j] = again.details[k] or "decided by real differences"
+    taken = _take_rows(first, bad[settled], again, np.flatnonzero(settled),
+                       lambda _k: "decided by real differences")
     agreed = [coordinate_name(setup.layout, int(c))
               for c, v in zip(coords[settled], again.verdict[settled]) if v == "agree"]
     notes = list(first.notes)
     if agreed:
         notes.append(say.rechecked(agreed, method))
-    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details,
-                   notes=notes)
+    return replace(taken, notes=notes)
+
+
+def _take_rows(first: Comparison, rows, again: Comparison, at, detail) -> Comparison:
+    """first, with its `rows` replaced by again's rows at positions `at`: numeric values
+    and steps, verdicts, allowances, and details (detail(k) where again's row has none)."""
+    numeric = first.numeric.copy()
+    numeric.estimates.put(rows, again.numeric.estimates.take(at))
+    numeric.h[rows] = again.numeric.h[at]
+    verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
+    verdict[rows], allowed[rows] = again.verdict[at], again.allowed[at]
+    for j, k in zip(rows, at):
+        details[j] = again.details[k] or detail(k)
+    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details)
 
 
 # An agreement whose error estimate is above this share of the value is loose: a 0.1%
@@ -291,16 +297,9 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
     if not settled.any():
         return first
     again = compare(setup, shorter, first.analytic, rtol, atol, analytic_eps)
-    numeric = first.numeric.copy()
-    rows, at = bad[settled], np.flatnonzero(settled)
-    numeric.estimates.put(rows, shorter.estimates.take(at))
-    numeric.h[rows] = shorter.h[at]
-    verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
-    verdict[rows], allowed[rows] = again.verdict[at], again.allowed[at]
-    for j, k in zip(rows, at):
-        details[j] = again.details[k] or (f"step shortened to {shorter.h[k]:.3g}: the cost "
-                                          "varies on a shorter length here")
-    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details)
+    return _take_rows(first, bad[settled], again, np.flatnonzero(settled),
+                      lambda k: f"step shortened to {shorter.h[k]:.3g}: the cost varies on "
+                                "a shorter length here")
 
 
 def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
