@@ -44,6 +44,11 @@ class Lines:
     undefined: bool          # a line met a non-finite value or an error
     direction: np.ndarray    # the first finite line's direction (for the flat-line tests)
     spacing: float = stencils.NOISE_SPACING   # and its spacing
+    # The smallest, over the lines that change, of max(curvature_s2, slope): how much the
+    # cost varies over a coordinate's scale, for a cost near 0 (precision).  The smallest,
+    # because one line sampling periodic noise in step with its period looks like a
+    # smooth bend of enormous curvature.
+    variation: float = 0.0
 
 
 def noise_direction(size: int, scale: np.ndarray, seed=0, sizes: int = 1) -> np.ndarray:
@@ -101,14 +106,37 @@ def _line_values(runner: CostRunner, v, t, f0):
     return values
 
 
+# A nonzero coordinate far smaller than its scale moves along the noise lines by at
+# most 1 / (4 OWN_SIZE_SHARE) of itself (4 t |x| OWN_SIZE_SHARE, t = 2^-20): at its scale, a
+# line would cross a pole at 0 (gammaln at 1e-6 beside an entry of 1e3) whose finite
+# values on the far side read as noise, too small next to the cost to be re-measured.
+OWN_SIZE_SHARE = 2.0 ** 16
+# ... but only down to this share of its scale: below it (x = 1e-17 in x^4) the stencils'
+# steps are no shorter than the lines' anyway, and the lines' view of the cost's third
+# derivative over their spacing is what bounds a complex step's error there.
+SMALLEST_OF_SCALE = 2.0 ** -40
+
+
+def line_reach(base, scale) -> np.ndarray:
+    """How far the noise lines move each coordinate, per unit of their spacing: its
+    scale, or OWN_SIZE_SHARE times |x| where that is smaller and |x| is above
+    SMALLEST_OF_SCALE of the scale."""
+    size = np.abs(base)
+    with np.errstate(invalid="ignore", over="ignore"):
+        own = OWN_SIZE_SHARE * size
+        small = np.isfinite(size) & (size > SMALLEST_OF_SCALE * scale) & (own < scale)
+    return np.where(small, own, scale)
+
+
 def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
     """Cost values along three random lines with unrelated spacings (More & Wild's
     difference table on each); the larger consistent noise level is kept."""
     t = stencils.noise_spacing(eps)
     seen, undefined = [], False
-    v1 = noise_direction(base.size, scale, 0)
+    reach = line_reach(base, scale)
+    v1 = noise_direction(base.size, reach, 0)
     for seed, spacing in ((0, t), (1, t * SECOND_LINE_SPACING), (3, t * THIRD_LINE_SPACING)):
-        v = v1 if seed == 0 else noise_direction(base.size, scale, seed)
+        v = v1 if seed == 0 else noise_direction(base.size, reach, seed)
         values = _line_values(runner, v, spacing, f0)
         if values is None:
             # Near the edge of where the cost is defined.  A shorter line is no help: the
@@ -136,7 +164,30 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
     # next to lines that change, says nothing about quantization).
     flat = all(np.all(values == f0) for values, _, _ in seen)
     _, line, direction = seen[0]
-    return Lines(features, quantized, flat, undefined, direction, line.spacing)
+    moving = [f for values, f, _ in seen if np.any(values != f0)] or [first]
+    variation = min(max(f.curvature_s2, f.slope) for f in moving)
+    return Lines(features, quantized, flat, undefined, direction, line.spacing, variation)
+
+
+def coordinate_line(setup: "Setup", i: int):
+    """The noise line along coordinate i alone (8 evaluations at the first line's
+    spacing): (features, eps_f) of what this coordinate's own stencils see, or None where
+    a point was not finite.  The lines through all coordinates see every coordinate's
+    noise and curvature at once: a float32 entry of 1e4 rounds the cost far more than
+    a change of another entry of size 1 does."""
+    v = np.zeros(setup.base.size)
+    # Over the coordinate's scale, as its stencils' steps are (not line_reach): the noise
+    # that matters is the noise where the stencil's points lie.
+    v[i] = stencils.power_of_two(setup.scale[i:i + 1])[0]
+    values = _line_values(setup.runner, v, setup.lines.spacing, setup.f0)
+    if values is None:
+        return None
+    spread = float((v[i] / setup.scale[i]) ** 2)
+    features = stencils.line_features(values, setup.lines.spacing, spread)
+    _, features, _ = _settled_line(setup.runner, v, setup.lines.spacing, setup.f0, values,
+                                   features, spread)
+    size = float(np.max(np.abs(values), initial=abs(setup.f0)))
+    return features, relative_precision(setup.runner.output_dtype, features.noise, size)
 
 
 # A line whose difference table never levels off (stencils.table_settles) is measured
@@ -237,8 +288,8 @@ def precision(lines: Lines, f0: float, output_dtype, leaf_eps: np.ndarray) -> tu
     line = lines.features
     dtype_eps = float(np.finfo(output_dtype).eps)
     size = float(np.max(np.abs(line.values), initial=abs(f0)))
-    if size <= NEAR_ZERO * max(line.curvature_s2, line.slope):
-        size = max(line.curvature_s2, line.slope)
+    if size <= NEAR_ZERO * lines.variation:
+        size = lines.variation
     eps_f = relative_precision(output_dtype, line.noise, size)
     noisy = eps_f > NOISY_ABOVE * dtype_eps
     return eps_f, noisy, np.maximum(leaf_eps, eps_f if noisy else dtype_eps)
