@@ -275,8 +275,9 @@ LOOSE = 1e-4
 
 def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
                   analytic_eps=None) -> Comparison:
-    """Recheck with Richardson at ever shorter steps the rows that disagree with an
-    automatic step long for the length the cost varies on there (numeric.long_for_length),
+    """Recheck with Richardson at ever shorter steps the rows that disagree (or, for a
+    noise-free cost, are undecided) with an automatic step long for the length the cost
+    varies on there (numeric.long_for_length),
     and the rows that agree only loosely (an error estimate above LOOSE of the value,
     where a 0.1% error would pass: a central difference next to a pole).  Where the values
     settle, with a smaller error, they and their verdict replace the row's.  Only these
@@ -288,7 +289,11 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
     size = np.abs(est.derivative)
     loose = (first.verdict == "agree") & (est.error > LOOSE * size) & (est.error < size) & \
         (est.truncation > est.rounding) & (first.numeric.method not in ("forward", "backward"))
-    bad = np.flatnonzero(((first.verdict == "disagree") & long_for_length(first.numeric)) |
+    # Undecided rows of a noise-free cost too: a step far too long for the length leaves
+    # the value unknown rather than wrong (a coordinate of size 1e-6 whose step is sized
+    # from 1).
+    unsure = ("disagree",) if setup.noisy else ("disagree", "noisy")
+    bad = np.flatnonzero((np.isin(first.verdict, unsure) & long_for_length(first.numeric)) |
                          loose)
     if bad.size == 0 or setup.runner.interrupted:
         return first
@@ -300,6 +305,57 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
     return _take_rows(first, bad[settled], again, np.flatnonzero(settled),
                       lambda k: f"step shortened to {shorter.h[k]:.3g}: the cost varies on "
                                 "a shorter length here")
+
+
+# Rows whose values are half or more apart yet do not disagree, and are not negligible
+# next to their own terms, are measured along their own line, up to this many per check
+# (12 evaluations each: a line and a Richardson pass).
+OWN_LINE_ROWS = 8
+
+
+def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) -> Comparison:
+    """Recheck, with the noise and curvature seen along the coordinate alone
+    (probes.coordinate_line), the rows that agree or are undecided although analytic and
+    numeric values are half or more apart.  Their error estimate and allowance came
+    from lines through all coordinates, which carry every coordinate's noise and
+    curvature: one entry of 1e4 in a float32 cost would hide a sign error in another of
+    size 1.  A row whose own line decides it (agree, disagree or kink) takes that
+    verdict and its numbers."""
+    # A noisy cost's noise is everywhere, and one short line measures it less surely than
+    # three: only rounding can be coordinate-local.
+    if rtol is not None or atol is not None or setup.noisy or setup.lines is None or \
+            setup.lines.quantized:
+        return first
+    est = first.numeric.estimates
+    a = first.analytic[first.numeric.coords]
+    s = setup.scale[first.numeric.coords]
+    size = np.maximum(np.abs(a), np.abs(est.derivative))
+    with np.errstate(all="ignore"):
+        own = np.abs(setup.f0) / s + est.curvature * stencils.reach(
+            est.derivative, est.curvature, s, np.abs(setup.base[first.numeric.coords]))
+        apart = verdicts.relative_error(a, est.derivative) >= verdicts.UNDECIDED_SHARE
+        share = size / own
+    candidates = np.isin(first.verdict, ("agree", "noisy")) & apart & np.isfinite(size) & \
+        (size > verdicts.NEGLIGIBLE * own)
+    rows = np.flatnonzero(candidates)
+    rows = rows[np.argsort(-share[rows], kind="stable")][:OWN_LINE_ROWS]
+    out = first
+    for j in rows:
+        if setup.runner.interrupted:
+            break
+        c = first.numeric.coords[j]
+        seen = probes.coordinate_line(setup, int(c))
+        if seen is None:
+            continue
+        line, eps_f = seen
+        alone = replace(setup, line=line, eps_f=min(eps_f, setup.eps_f))
+        h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
+        numeric = numeric_derivatives(alone, "richardson", np.array([c]), h)
+        again = compare(alone, numeric, first.analytic, rtol, atol, analytic_eps)
+        if again.verdict[0] in ("agree", "disagree", "kink"):
+            out = _take_rows(out, np.array([j]), again, np.array([0]),
+                             lambda _k: "decided by the noise along this coordinate alone")
+    return out
 
 
 def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
@@ -427,6 +483,7 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
     comp = second_opinion(setup, comp, rtol, atol, analytic_eps)
     if step is None:
         comp = shorter_steps(setup, comp, rtol, atol, analytic_eps)
+        comp = own_lines(setup, comp, rtol, atol, analytic_eps)
     report = finish(setup, comp, used, analytic_eps=analytic_eps,
                     allow_undecided=allow_undecided,
                     probe_unsampled=_worth_probing(setup.layout.size - coords.size, used),

@@ -211,3 +211,57 @@ def test_a_loose_central_agreement_next_to_a_pole_is_measured_again():
     off = gk.compare_gradient(lambda v: np.sum(np.log(v)), x,
                               lambda v: np.array([FACTOR, 1, 1]) / v, method="central")
     assert _verdicts(off)["x[0]"] == "disagree", off.to_text()
+
+
+# d/dx log Gamma(x) = digamma(x) = psi(x) (DLMF 5.2.2); scipy.special supplies both.  A coordinate
+# at 1e-6, next to its pole at 0, beside entries of 40 and 1e3 whose values make the cost
+# large: noise lines sized from the scale 1 would cross the pole and read its far side as
+# noise too small next to the cost to look suspicious.
+@pytest.mark.parametrize("method", ["central", "richardson", "auto"])
+def test_a_coordinate_next_to_its_pole_beside_large_entries_passes(method):
+    x = np.array([1e-6, 0.3, 2.5, 40.0, 1e3])
+    weights = np.linspace(0.7, 1.3, 5)
+    report = gk.compare_gradient(lambda v: np.sum(weights * gammaln(v)), x,
+                                 lambda v: weights * psi(v), method=method)
+    assert report.passed and set(_verdicts(report).values()) == {"agree"}, report.to_text()
+    off = gk.compare_gradient(lambda v: np.sum(weights * gammaln(v)), x,
+                              lambda v: weights * psi(v) * [FACTOR, 1, 1, 1, 1],
+                              method=method)
+    assert _verdicts(off)["x[0]"] == "disagree", off.to_text()
+
+
+# A heteroscedastic Gaussian fit in float32: readings near 1e4 (a mean intercept of 1e4)
+# and a log-variance s = Z @ ws of size 1.  -log N(y | mu, e^s) = (s + (y - mu)^2 e^-s) / 2
+# up to a constant; its derivatives are textbook (common practice).  The lines through
+# all coordinates carry the rounding of mu at 1e4, far above what a change of ws alone
+# sees, so a sign error in a ws entry used to pass as 'agree'.
+def _readings_f32():
+    rng = np.random.default_rng(21)
+    Z = np.column_stack([np.ones(30), rng.normal(size=(30, 2))]).astype(np.float32)
+    y = (1e4 + Z[:, 1:] @ [25.0, -9.0] + 6 * rng.normal(size=30)).astype(np.float32)
+    params = {"wm": np.array([9995.0, 24.0, -8.5], np.float32),
+              "ws": np.array([3.5, 0.15, -0.25], np.float32)}
+
+    def cost(p):
+        r, s = y - Z @ p["wm"], Z @ p["ws"]
+        return np.mean(0.5 * (s + r * r * np.exp(-s)))
+
+    def gradient(p):
+        r, s = y - Z @ p["wm"], Z @ p["ws"]
+        return {"wm": Z.T @ (-r * np.exp(-s)) / np.float32(30),
+                "ws": Z.T @ (0.5 * (1 - r * r * np.exp(-s))) / np.float32(30)}
+    return cost, gradient, params
+
+
+@pytest.mark.parametrize("method", ["central", "richardson", "auto"])
+def test_a_sign_error_beside_a_large_float32_entry_is_caught(method):
+    cost, gradient, params = _readings_f32()
+    right = gk.compare_gradient(cost, params, gradient, method=method, seed=0)
+    assert right.passed, right.to_text()
+    for k in range(3):
+        def flipped(p, k=k):
+            g = gradient(p)
+            g["ws"][k] *= -1
+            return g
+        off = gk.compare_gradient(cost, params, flipped, method=method, seed=0)
+        assert _verdicts(off)[f"ws[{k}]"] == "disagree", off.to_text()
