@@ -146,6 +146,13 @@ def _chunks(where, amounts):
             (a.tolist() if isinstance(a, np.ndarray) else list(a))
 
 
+def _same_values(a, b) -> bool:
+    """np.array_equal(a, b, equal_nan=True), with a quick exact comparison first: the
+    buffer almost always holds the base exactly, and the NaN-aware test costs more than a
+    small check's evaluations."""
+    return bool((a == b).all()) or bool(np.array_equal(a, b, equal_nan=True))
+
+
 def _kept_point_changed(buffer, base, where, amount) -> bool:
     """A cost kept the shared buffer: did it change it before it was let go?"""
     return not np.array_equal(buffer, _point(base, where, amount), equal_nan=True)
@@ -235,8 +242,7 @@ def _serial_pass(cost, layout, base, where, amounts, start, bar, stop, reuse):
         if stop is not None:
             stop.set()     # the other threads' shares stop too
         return values, failures, True, True
-    intact = not spoiled if shared is None else \
-        bool(np.array_equal(shared, base, equal_nan=True))
+    intact = not spoiled if shared is None else _same_values(shared, base)
     return values, failures, False, intact
 
 
@@ -717,10 +723,12 @@ class CostRunner:
         if now is None or now.shape != self.base.shape:
             changed = ["the structure of params"]
         else:
-            changed = [leaf.name for leaf in self.layout.leaves
-                       if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
-                                             self.base[leaf.offset:leaf.offset + leaf.size],
-                                             equal_nan=True)]
+            # Nothing changed (the common case) in one exact comparison of all values.
+            changed = [] if bool((now == self.base).all()) else \
+                [leaf.name for leaf in self.layout.leaves
+                 if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
+                                       self.base[leaf.offset:leaf.offset + leaf.size],
+                                       equal_nan=True)]
         self.edits_input = self.edits_input or bool(changed)
         return changed
 
@@ -730,7 +738,7 @@ class CostRunner:
             seconds = m * self.seconds_per_call
             if self.executor is not None:
                 seconds /= executor_workers(self.executor)
-            show = sys.stderr.isatty() and seconds > PROGRESS_AFTER_SECONDS
+            show = seconds > PROGRESS_AFTER_SECONDS and sys.stderr.isatty()
         if not show:
             return None
         from tqdm.auto import tqdm  # imported only when a bar is shown

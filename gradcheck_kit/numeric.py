@@ -360,13 +360,7 @@ def _one_sided(setup: Setup, numeric: Numeric, positions, first_values) -> None:
 
 def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Numeric:
     """One stencil per coordinate; h is aligned with coords."""
-    full = np.zeros(setup.base.size)
-    full[coords] = h
-    where, amounts = plan.requests(method, coords, full)
-    with warnings.catch_warnings():
-        if method == "complex-step":  # a cast that drops the imaginary part is an error here
-            warnings.simplefilter("error", np.exceptions.ComplexWarning)
-        results = setup.runner.run(where, amounts, label=f"{method} differences")
+    results = _run_stencils(setup, method, coords, h)
     k = len(stencils.OFFSETS[method])
     values = results.values.reshape(len(coords), k)
     failed = np.zeros(len(coords), dtype=bool)
@@ -389,6 +383,18 @@ def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Nu
                              np.abs(np.nan_to_num(setup.base[coords])))
         est = stencils.combine(method, values, h, s, near)
     return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
+
+
+def _run_stencils(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray):
+    """The cost at every stencil point of `coords`.  The requests (four parameter vectors
+    of a full central sweep) end with this call, before the estimates are made."""
+    full = np.zeros(setup.base.size)
+    full[coords] = h
+    where, amounts = plan.requests(method, coords, full)
+    with warnings.catch_warnings():
+        if method == "complex-step":  # a cast that drops the imaginary part is an error here
+            warnings.simplefilter("error", np.exceptions.ComplexWarning)
+        return setup.runner.run(where, amounts, label=f"{method} differences")
 
 
 def term_sizes(setup: Setup, numeric: Numeric, third: bool = False) -> np.ndarray:

@@ -634,20 +634,9 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
     runs along a random direction through all of them (a few dozen evaluations).
     notes, problems: what the earlier stages found (method choice, probes, a search that
     ran out of budget), added after the setup's own."""
-    rows = rows_of(setup, comp)
-    done = comp.numeric.done
-    coords = comp.numeric.coords
-    a = comp.analytic[coords]
-    est = comp.numeric.estimates
-    n = est.derivative
     rtol_s, atol_s, central_rtol, central_atol = _suggested_tolerances(setup, comp, method)
-    # Hints test their patterns against the tool's own allowance, never the caller's rtol.
-    with np.errstate(all="ignore"):
-        own = verdicts.allowed_difference(a, n, est.error, terms=term_sizes(setup, comp.numeric),
-                                          eps_f=setup.eps_f, eps_a=analytic_eps)
-    hints = mismatch_hints(setup.layout, _finished(coords, done), setup.base,
-                           _finished(a, done), _finished(n, done), _finished(comp.verdict, done),
-                           _finished(own, done), _finished(comp.kinks.found, done))
+    hints = _hints(setup, comp, analytic_eps)
+    rows = rows_of(setup, comp)     # after the hints: their temporaries are gone by now
     notes = list(setup.notes) + list(notes) + list(comp.notes)
     problems = list(setup.problems) + list(problems)
     if analytic_eps is not None and analytic_eps > np.finfo(np.float64).eps:
@@ -679,6 +668,24 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
         hints=hints, notes=notes, problems=problems, suggested_rtol=rtol_s,
         suggested_atol=atol_s, interrupted=setup.runner.interrupted, title=title, extra=extra,
         suggested_central_rtol=central_rtol, suggested_central_atol=central_atol)
+
+
+def _hints(setup: Setup, comp: Comparison, analytic_eps) -> list:
+    """The hints of the finished rows.  They test their patterns against the tool's own
+    allowance, never the caller's rtol.  They explain disagreements: none, no hints."""
+    if not np.any(comp.verdict == "disagree"):
+        return []
+    done = comp.numeric.done
+    coords = comp.numeric.coords
+    a = comp.analytic[coords]
+    est = comp.numeric.estimates
+    n = est.derivative
+    with np.errstate(all="ignore"):
+        own = verdicts.allowed_difference(a, n, est.error, terms=term_sizes(setup, comp.numeric),
+                                          eps_f=setup.eps_f, eps_a=analytic_eps)
+    return mismatch_hints(setup.layout, _finished(coords, done), setup.base,
+                          _finished(a, done), _finished(n, done), _finished(comp.verdict, done),
+                          _finished(own, done), _finished(comp.kinks.found, done))
 
 
 @interrupts_as_check_interrupted("noise estimate")

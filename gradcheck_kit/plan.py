@@ -70,6 +70,22 @@ def scale_of(x: np.ndarray) -> np.ndarray:
         return np.where(np.isfinite(x), np.maximum(np.abs(x), 1.0), 1.0)
 
 
+_ZERO = np.zeros(1)
+_ZERO.setflags(write=False)
+
+
+def zeros(n: int) -> np.ndarray:
+    """n read-only zeros that take no memory (one zero, seen n times): the estimates a
+    stencil does not make, at any n (np.broadcast_to does the same, 4x slower).
+
+    Examples
+    --------
+    >>> zeros(3).tolist(), zeros(3).flags.writeable
+    ([0.0, 0.0, 0.0], False)
+    """
+    return np.ndarray(n, buffer=_ZERO, strides=(0,))
+
+
 def power_of_two(h):
     """Largest power of two not above h (positive h).
 

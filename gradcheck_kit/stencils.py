@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .plan import (COMPLEX_STEP, METHODS, OFFSETS, STEP_POWER,  # noqa: F401 - the method table
-                   default_steps, power_of_two, scale_of)
+                   default_steps, power_of_two, scale_of, zeros)
 
 # Order p of each stencil's truncation error, O(h^p).
 ORDER = {"forward": 1, "backward": 1, "central": 2, "five-point": 4, "richardson": 4,
@@ -86,8 +86,8 @@ def combine(method: str, values: np.ndarray, h: np.ndarray, scale: np.ndarray,
     f0, eps_f, curvature_hint = near.f0, near.eps_f, near.curvature
     noise = value_noise(f, near)
     est = _estimate(method, f, h, scale, noise, near)
-    if est.gap is None:
-        est.gap = np.zeros(len(h))
+    if est.gap is None:     # no embedded lower-order value: zeros of no memory (read-only)
+        est.gap = zeros(len(h))
     # Rounding in the terms a derivative is made of: where the cost is near 0 (a zero
     # residual) its values round far below its terms, which are about |f1| + |f0| / scale
     # + |f2| * scale; no stencil can be more exact than eps_f times those.
@@ -650,7 +650,7 @@ def find_kinks(method: str, values: np.ndarray, f0: float, h: np.ndarray,
     n = len(h)
     levels = one_sided_levels(method, values, f0, h)
     if levels is None:
-        zero = np.zeros(n)
+        zero = zeros(n)      # read-only zeros of no memory
         return Kinks(np.zeros(n, dtype=bool), zero, zero, zero)
     dp, dm, dp_far, dm_far, step_near = levels
     jump_near, jump_far = dp - dm, dp_far - dm_far
