@@ -316,7 +316,8 @@ OWN_LINE_ROWS = 8
 def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) -> Comparison:
     """Recheck, with the noise and curvature seen along the coordinate alone
     (probes.coordinate_line), the rows that agree or are undecided although analytic and
-    numeric values are half or more apart.  Their error estimate and allowance came
+    numeric values are half or more apart, or the numeric one is known to less than
+    half of itself.  Their error estimate and allowance came
     from lines through all coordinates, which carry every coordinate's noise and
     curvature: one entry of 1e4 in a float32 cost would hide a sign error in another of
     size 1.  A row whose own line decides it (agree, disagree or kink) takes that
@@ -334,8 +335,11 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         own = np.abs(setup.f0) / s + est.curvature * stencils.reach(
             est.derivative, est.curvature, s, np.abs(setup.base[first.numeric.coords]))
         apart = verdicts.relative_error(a, est.derivative) >= verdicts.UNDECIDED_SHARE
+        # ... or known to less than half of itself: such an agreement proves nothing.
+        vague = est.error >= verdicts.UNDECIDED_SHARE * size
         share = size / own
-    candidates = np.isin(first.verdict, ("agree", "noisy")) & apart & np.isfinite(size) & \
+    candidates = np.isin(first.verdict, ("agree", "noisy")) & (apart | vague) & \
+        np.isfinite(size) & \
         (size > verdicts.NEGLIGIBLE * own)
     rows = np.flatnonzero(candidates)
     rows = rows[np.argsort(-share[rows], kind="stable")][:OWN_LINE_ROWS]
