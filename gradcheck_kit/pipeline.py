@@ -307,8 +307,9 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
                                 "a shorter length here")
 
 
-# Rows whose values are half or more apart yet do not disagree, and are not negligible
-# next to their own terms, are measured along their own line, up to this many per check
+# Rows whose values are half or more apart (or whose numeric value is known to less than
+# half of itself) yet do not disagree, and are not negligible next to their own terms,
+# are measured along their own line, up to this many per check
 # (12 evaluations each: a line and a Richardson pass).
 OWN_LINE_ROWS = 8
 
@@ -344,6 +345,8 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
     rows = np.flatnonzero(candidates)
     rows = rows[np.argsort(-share[rows], kind="stable")][:OWN_LINE_ROWS]
     out = first
+    if rows.size:
+        h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
     for j in rows:
         if setup.runner.interrupted:
             break
@@ -353,7 +356,6 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
             continue
         line, eps_f = seen
         alone = replace(setup, line=line, eps_f=min(eps_f, setup.eps_f))
-        h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
         numeric = numeric_derivatives(alone, "richardson", np.array([c]), h)
         again = compare(alone, numeric, first.analytic, rtol, atol, analytic_eps)
         if again.verdict[0] in ("agree", "disagree", "kink"):
