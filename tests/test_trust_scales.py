@@ -266,3 +266,36 @@ def test_a_sign_error_beside_a_large_float32_entry_is_caught(method):
                 return g
             off = gk.compare_gradient(cost, params, wrong, method=method, seed=0)
             assert _verdicts(off)[f"ws[{k}]"] == "disagree", (factor, off.to_text())
+
+
+# A float32 fit of a draining tank's level, h(t) = h0 - a t^2 + b t, with h0 near 900 and
+# a, b of size 1; least squares, derivatives textbook (common practice).  The rounding of
+# h0's term gave b an error estimate of 2% of its value, so a 5% error in b passed.
+def _tank_f32(h0):
+    t = np.linspace(0.5, 20.0, 40).astype(np.float32)
+    level = (910.0 - 1.05 * t ** 2 + 0.4 * t +
+             np.random.default_rng(11).normal(0, 2, t.size)).astype(np.float32)
+    params = {"h0": np.float32(h0), "a": np.float32(1.0), "b": np.float32(0.5)}
+
+    def cost(p):
+        r = p["h0"] - p["a"] * t ** 2 + p["b"] * t - level
+        return np.mean(r * r)
+
+    def gradient(p):
+        r = p["h0"] - p["a"] * t ** 2 + p["b"] * t - level
+        return {"h0": 2 * np.mean(r), "a": -2 * np.mean(r * t ** 2), "b": 2 * np.mean(r * t)}
+    return cost, gradient, params
+
+
+@pytest.mark.parametrize("h0", [700.0, 850.0, 900.0, 1200.0])
+def test_a_five_percent_error_beside_a_large_float32_intercept_is_caught(h0):
+    cost, gradient, params = _tank_f32(h0)
+    right = gk.compare_gradient(cost, params, gradient, seed=0)
+    assert right.passed, right.to_text()
+    for name in ("a", "b"):
+        def wrong(p, name=name):
+            g = gradient(p)
+            g[name] = g[name] * np.float32(1.05)
+            return g
+        off = gk.compare_gradient(cost, params, wrong, seed=0)
+        assert _verdicts(off)[name] == "disagree", off.to_text()
