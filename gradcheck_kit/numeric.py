@@ -267,7 +267,8 @@ def redo_undefined(setup: Setup, numeric: Numeric) -> Numeric:
         return numeric
     numeric = numeric.copy()   # the coordinates redone below are changed in this copy
     first_values = numeric.values[bad].copy()
-    h = numeric.h[bad].copy()
+    first_h = numeric.h[bad].copy()    # where the non-finite values were met, for the text
+    h = first_h.copy()
     todo = np.ones(bad.size, dtype=bool)
     shortest = SHORTEST_ULPS * setup.eps[numeric.coords[bad]] * \
         np.abs(np.nan_to_num(setup.base[numeric.coords[bad]]))
@@ -295,7 +296,7 @@ def redo_undefined(setup: Setup, numeric: Numeric) -> Numeric:
             _adopt(numeric, bad[k_fine[ok]], inner, np.flatnonzero(ok))
             h[k_fine[ok]] /= SHORTEN_BY
         for j, i in zip(bad[k[fine]], k[fine]):
-            where = _offsets_text(numeric, first_values[i], j)
+            where = _offsets_text(numeric.method, first_values[i], first_h[i])
             numeric.details[j] = f"the cost is not finite at {where}: step shortened to {h[i]:.3g}"
         todo[k[fine]] = False
     rest = bad[todo]
@@ -305,8 +306,9 @@ def redo_undefined(setup: Setup, numeric: Numeric) -> Numeric:
     return numeric
 
 
-def _offsets_text(numeric: Numeric, values, j) -> str:
-    offsets = np.array(stencils.OFFSETS[numeric.method]) * numeric.h[j]
+def _offsets_text(method: str, values, h: float) -> str:
+    """'x-0.000488, x+0.000488': the stencil points at step h whose values are not finite."""
+    offsets = np.array(stencils.OFFSETS[method]) * h
     where = [f"{o:+.3g}" for o, v in zip(offsets, values) if not np.isfinite(v)]
     return "x" + ", x".join(where)
 
@@ -342,20 +344,18 @@ def _one_sided(setup: Setup, numeric: Numeric, positions, first_values) -> None:
     d = 2 * near - far
     noise = stencils.value_noise(v, stencils.Near(setup.f0, setup.eps_f, setup.line.noise))
     for k, j in enumerate(positions):
+        points = _offsets_text(numeric.method, first_values[k], h[k])
         side = "forward" if sides[k] > 0 else "backward"
         ok = np.isfinite(v[k]).all() and not any(2 * k + r in run.failures for r in (0, 1))
         est = numeric.estimates
         if ok:
             est.derivative[j], est.truncation[j] = d[k], 2 * abs(near[k] - far[k])
             est.rounding[j], est.gap[j], est.curvature[j] = 10 * noise[k] / h[k], 0.0, 0.0
-            numeric.details[j] = (f"the cost is not finite at "
-                                  f"{_offsets_text(numeric, first_values[k], j)}: {side} "
-                                  "differences used")
+            numeric.details[j] = f"the cost is not finite at {points}: {side} differences used"
         else:
             est.derivative[j] = np.nan
-            numeric.details[j] = (f"the cost is not finite near here (at "
-                                  f"{_offsets_text(numeric, first_values[k], j)}, and on both "
-                                  "sides at every shorter step tried)")
+            numeric.details[j] = (f"the cost is not finite near here (at {points}, and on "
+                                  "both sides at every shorter step tried)")
 
 
 def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Numeric:

@@ -100,3 +100,25 @@ def test_numeric_gradient_uses_one_sided_differences_without_a_warning():
 def test_numeric_gradient_is_nan_where_the_cost_is_defined_only_at_the_point():
     g = gk.numeric_gradient(defined_only_at_one, X.copy())
     assert np.isnan(g[0]) and g[1] == pytest.approx(4.0, rel=1e-6)
+
+
+@pytest.mark.parametrize("method", ["richardson", "auto"])
+def test_the_points_named_as_not_finite_are_where_the_cost_is_not_finite(method):
+    # A log barrier with its slack at 1e-10: the first stencil crosses 0, a shorter step
+    # is taken, and the detail must name the first stencil's points (where the cost was
+    # not finite), not the shorter step's (where it is finite).
+    x = np.array([4150.0, 1e-10, 0.35])
+
+    def cost(v):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return 1e-3 * v[0] ** 2 - np.log(v[1]) + v[2] ** 2
+    report = gk.compare_gradient(cost, x, lambda v: np.array([2e-3 * v[0], -1 / v[1],
+                                                              2 * v[2]]), method=method)
+    assert report.passed, report.to_text()
+    detail = _row(report, "x[1]").detail
+    named = detail.split("not finite at ")[1].split(":")[0].split(", ")
+    assert named, detail
+    for point in named:
+        shifted = x.copy()
+        shifted[1] += float(point[1:])
+        assert not np.isfinite(cost(shifted)), (point, detail)
