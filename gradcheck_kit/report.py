@@ -696,17 +696,31 @@ def summary_line(report: GradientReport) -> str:
     return title + "; ".join(parts)
 
 
+# A suggested rtol at or above this would pass a gradient that much off: the line says so
+# rather than offer it as something to pin.
+TOO_LOOSE_RTOL = 0.1
+
+
+def _too_loose(rtol) -> str:
+    return ("; too loose to be worth pinning: it would pass a gradient that far off"
+            if rtol >= TOO_LOOSE_RTOL else "")
+
+
 def tolerance_line(report: GradientReport) -> str | None:
     """The suggested tolerances, saying which method they hold for; None if none agree."""
     if report.suggested_rtol is None:
         return None
     line = (f"  tolerances that the agreeing coordinates pass with a 10x margin: "
             f"rtol={_tolerance(report.suggested_rtol)}, "
-            f"atol={_tolerance(report.suggested_atol)} for method {report.method} (used here)")
+            f"atol={_tolerance(report.suggested_atol)} for method {report.method} (used here"
+            f"{_too_loose(report.suggested_rtol)})")
     if report.suggested_central_rtol is not None:
-        line += (f"; rtol={_tolerance(report.suggested_central_rtol)}, "
+        rtol = report.suggested_central_rtol
+        line += (f"; rtol={_tolerance(rtol)}, "
                  f"atol={_tolerance(report.suggested_central_atol)} for method=\"central\" "
-                 "(what tests often pin)")
+                 + ("(what tests often pin)" if rtol < TOO_LOOSE_RTOL else
+                    "(central differences cannot check these coordinates: a test pinning this "
+                    "would pass a gradient that far off)"))
     return line
 
 

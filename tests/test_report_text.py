@@ -145,3 +145,25 @@ def test_json_documents_every_key():
     for key in data:
         assert re.search(rf"^\s+{key}\b|, {key}\b", doc, flags=re.M), key
     assert data["title"] == "gradient check" and data["schema_version"] == 2
+
+
+def test_a_central_tolerance_too_loose_to_catch_anything_is_not_offered_to_pin():
+    # A float32 least-squares fit with an intercept near 850: central differences cannot
+    # resolve the slopes, and a suggested rtol of 1 or more would pass any gradient.
+    t = np.linspace(0.5, 20.0, 40).astype(np.float32)
+    level = (860.0 - 1.05 * t ** 2).astype(np.float32)
+    params = {"h0": np.float32(850.0), "a": np.float32(1.0), "b": np.float32(0.5)}
+
+    def cost(p):
+        r = p["h0"] - p["a"] * t ** 2 + p["b"] * t - level
+        return np.mean(r * r)
+
+    def gradient(p):
+        r = p["h0"] - p["a"] * t ** 2 + p["b"] * t - level
+        return {"h0": 2 * np.mean(r), "a": -2 * np.mean(r * t ** 2), "b": 2 * np.mean(r * t)}
+    report = gk.compare_gradient(cost, params, gradient)
+    assert report.passed, report.to_text()
+    line = report.to_text().splitlines()[-1]
+    assert report.suggested_central_rtol >= 0.1, line
+    assert "central differences cannot check these coordinates" in line, line
+    assert "what tests often pin" not in line, line
