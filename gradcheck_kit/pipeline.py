@@ -169,6 +169,9 @@ class Comparison:
     kinks: stencils.Kinks
     details: list
     notes: list = field(default_factory=list)   # what a later stage found out about these rows
+    # The tool's own allowance (as `allowed` when no rtol / atol was given), which the
+    # hints test their patterns against, never the caller's tolerances.
+    own_allowed: np.ndarray = None
 
 
 def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
@@ -198,7 +201,12 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
         verdict = verdicts.mark_undecided(verdict, a, est, sizes,
                                           details, setup.noisy,
                                           setup.line.noise)
-    return Comparison(numeric, analytic, allowed, verdict, kinks, details)
+    own = allowed
+    if rtol is not None or atol is not None:
+        with np.errstate(all="ignore"):
+            own = verdicts.allowed_difference(a, est.derivative, est.error, terms=terms,
+                                              eps_f=setup.eps_f, eps_a=analytic_eps)
+    return Comparison(numeric, analytic, allowed, verdict, kinks, details, own_allowed=own)
 
 
 def second_opinion(setup: Setup, first: Comparison, rtol, atol,
@@ -263,9 +271,12 @@ def _take_rows(first: Comparison, rows, again: Comparison, at, detail) -> Compar
     numeric.h[rows] = again.numeric.h[at]
     verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
     verdict[rows], allowed[rows] = again.verdict[at], again.allowed[at]
+    own = first.own_allowed.copy()
+    own[rows] = again.own_allowed[at]
     for j, k in zip(rows, at):
         details[j] = again.details[k] or detail(k)
-    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details)
+    return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details,
+                   own_allowed=own)
 
 
 # An agreement whose error estimate is above this share of the value is loose: a 0.1%
@@ -645,7 +656,7 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
     notes, problems: what the earlier stages found (method choice, probes, a search that
     ran out of budget), added after the setup's own."""
     rtol_s, atol_s, central_rtol, central_atol = _suggested_tolerances(setup, comp, method)
-    hints = _hints(setup, comp, analytic_eps)
+    hints = _hints(setup, comp)
     rows = rows_of(setup, comp)     # after the hints: their temporaries are gone by now
     notes = list(setup.notes) + list(notes) + list(comp.notes)
     problems = list(setup.problems) + list(problems)
@@ -680,7 +691,7 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
         suggested_central_rtol=central_rtol, suggested_central_atol=central_atol)
 
 
-def _hints(setup: Setup, comp: Comparison, analytic_eps) -> list:
+def _hints(setup: Setup, comp: Comparison) -> list:
     """The hints of the finished rows.  They test their patterns against the tool's own
     allowance, never the caller's rtol.  They explain disagreements: none, no hints."""
     if not np.any(comp.verdict == "disagree"):
@@ -688,14 +699,10 @@ def _hints(setup: Setup, comp: Comparison, analytic_eps) -> list:
     done = comp.numeric.done
     coords = comp.numeric.coords
     a = comp.analytic[coords]
-    est = comp.numeric.estimates
-    n = est.derivative
-    with np.errstate(all="ignore"):
-        own = verdicts.allowed_difference(a, n, est.error, terms=term_sizes(setup, comp.numeric),
-                                          eps_f=setup.eps_f, eps_a=analytic_eps)
+    n = comp.numeric.estimates.derivative
     return mismatch_hints(setup.layout, _finished(coords, done), setup.base,
                           _finished(a, done), _finished(n, done), _finished(comp.verdict, done),
-                          _finished(own, done), _finished(comp.kinks.found, done))
+                          _finished(comp.own_allowed, done), _finished(comp.kinks.found, done))
 
 
 @interrupts_as_check_interrupted("noise estimate")

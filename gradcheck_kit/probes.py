@@ -170,7 +170,7 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
 
 
 def coordinate_line(setup: "Setup", i: int):
-    """The noise line along coordinate i alone (8 evaluations at the first line's
+    """The noise line along coordinate i alone (8 evaluations at a first line's
     spacing): (features, eps_f) of what this coordinate's own stencils see, or None where
     a point was not finite.  The lines through all coordinates see every coordinate's
     noise and curvature at once: a float32 entry of 1e4 rounds the cost far more than
@@ -179,13 +179,16 @@ def coordinate_line(setup: "Setup", i: int):
     # Over the coordinate's scale, as its stencils' steps are (not line_reach): the noise
     # that matters is the noise where the stencil's points lie.
     v[i] = stencils.power_of_two(setup.scale[i:i + 1])[0]
-    values = _line_values(setup.runner, v, setup.lines.spacing, setup.f0)
+    # The spacing of a first noise line for this coordinate's precision: the lines through
+    # all coordinates may have been shortened for another coordinate's pole.
+    spacing = stencils.noise_spacing(float(setup.eps[i]))
+    values = _line_values(setup.runner, v, spacing, setup.f0)
     if values is None:
         return None
-    spread = float((v[i] / setup.scale[i]) ** 2)
-    features = stencils.line_features(values, setup.lines.spacing, spread)
-    _, features, _ = _settled_line(setup.runner, v, setup.lines.spacing, setup.f0, values,
-                                   features, spread)
+    # Not measured again at shorter spacings (_settled_line): there a float32 cost's
+    # rounding steps pass for a curvature of 1e4, and a level too high only leaves the
+    # row undecided, as it was.
+    features = stencils.line_features(values, spacing, float((v[i] / setup.scale[i]) ** 2))
     size = float(np.max(np.abs(values), initial=abs(setup.f0)))
     return features, relative_precision(setup.runner.output_dtype, features.noise, size)
 

@@ -299,3 +299,30 @@ def test_a_five_percent_error_beside_a_large_float32_intercept_is_caught(h0):
             return g
         off = gk.compare_gradient(cost, params, wrong, seed=0)
         assert _verdicts(off)[name] == "disagree", off.to_text()
+        # the hints judge the row by the allowance that decided it
+        assert any("1.05 times" in h for h in off.hints), off.to_text()
+
+
+# A float32 cost with a Gamma shape parameter next to its pole (log Gamma(k), DLMF 5.2.2 for
+# its derivative psi), a rate near 6000 and an angle of size 1 (d/dw 3 sin w = 3 cos w,
+# common practice).  The noise lines are shortened for the pole; a coordinate's own line
+# must still be spaced for float32, where rounding steps would pass for a curvature of 1e4
+# and hide a 5% error in the angle's derivative.
+@pytest.mark.parametrize("shape", [2e-3, 3e-6])
+def test_a_five_percent_error_beside_a_float32_pole_is_caught(shape):
+    f32 = np.float32
+
+    def cost(p):
+        k, rate, w = p["shape"], p["rate"], p["angle"]
+        return gammaln(k) + f32(1e-4) * (rate - f32(5800)) ** 2 + f32(3) * np.sin(w) + \
+            k * np.log(rate)
+
+    def gradient(p, factor=1.0):
+        k, rate, w = p["shape"], p["rate"], p["angle"]
+        return {"shape": f32(psi(k) + np.log(rate)),
+                "rate": f32(f32(2e-4) * (rate - f32(5800)) + k / rate),
+                "angle": f32(f32(3) * np.cos(w) * f32(factor))}
+    params = {"shape": f32(shape), "rate": f32(6000.0), "angle": f32(0.8)}
+    assert gk.compare_gradient(cost, params, gradient, seed=0).passed
+    off = gk.compare_gradient(cost, params, lambda p: gradient(p, 1.05), seed=0)
+    assert _verdicts(off)["angle"] == "disagree", off.to_text()
