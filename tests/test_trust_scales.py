@@ -326,3 +326,32 @@ def test_a_five_percent_error_beside_a_float32_pole_is_caught(shape):
     assert gk.compare_gradient(cost, params, gradient, seed=0).passed
     off = gk.compare_gradient(cost, params, lambda p: gradient(p, 1.05), seed=0)
     assert _verdicts(off)["angle"] == "disagree", off.to_text()
+
+
+# A float32 linear model whose inputs come in very different units (a column of size 1e3
+# beside columns of size 1): squared-error loss, derivatives textbook (common practice).
+# Gradient entries run from about 1e3 down to below 1; every row used to be allowed the
+# rounding of terms the size of the largest entry, so a 5% error in a small entry passed.
+def test_a_five_percent_error_in_a_small_float32_entry_beside_large_ones_is_caught():
+    rng = np.random.default_rng(5)
+    X = np.column_stack([1e3 * rng.uniform(1, 2, 50), rng.normal(size=50),
+                         rng.normal(size=50)]).astype(np.float32)
+    y = (X @ np.array([2e-3, 0.7, -0.4]) + 0.1 * rng.normal(size=50)).astype(np.float32)
+    w = np.array([2.1e-3, 0.6, -0.3], dtype=np.float32)
+
+    def cost(v):
+        r = X @ v - y
+        return np.mean(r * r)
+
+    def gradient(v):
+        return 2 * X.T @ (X @ v - y) / np.float32(50)
+    right = gk.compare_gradient(cost, w, gradient, seed=0)
+    assert right.passed, right.to_text()
+    g = gradient(w)
+    small = int(np.argmin(np.abs(g)))
+    assert np.max(np.abs(g)) > 100 * abs(g[small])      # the case is what it says
+    for factor in (1.05, -1.0):
+        wrong = g.copy()
+        wrong[small] *= np.float32(factor)
+        off = gk.compare_gradient(cost, w, wrong, seed=0)
+        assert _verdicts(off)[f"x[{small}]"] == "disagree", (factor, off.to_text())
