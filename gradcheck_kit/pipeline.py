@@ -318,21 +318,21 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
                                 "a shorter length here")
 
 
-# Rows whose values are half or more apart (or whose numeric value is known only to
-# VAGUE_SHARE of itself or worse) yet do not disagree, and are not negligible next to their
+# Rows whose values are half or more apart (or whose allowance is VAGUE_SHARE of the value
+# or more) yet do not disagree, and are not negligible next to their
 # own terms, are measured along their own line, up to this many per check
 # (12 evaluations each: a line and a Richardson pass).
 OWN_LINE_ROWS = 8
-# 1%: a float32 fit with an intercept of 850 gave another entry an estimate of 2% of its
+# 2%: a float32 fit with an intercept of 850 gave another entry an estimate of 2% of its
 # value (from the intercept's rounding), and a 5% error in it passed.
-VAGUE_SHARE = 0.01
+VAGUE_SHARE = 0.02
 
 
 def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) -> Comparison:
     """Recheck, with the noise and curvature seen along the coordinate alone
     (probes.coordinate_line), the rows that agree or are undecided although analytic and
-    numeric values are half or more apart, or the numeric one is known only to
-    VAGUE_SHARE of itself or worse.  Their error estimate and allowance came
+    numeric values are half or more apart, or whose allowance reaches VAGUE_SHARE of
+    the value.  Their error estimate and allowance came
     from lines through all coordinates, which carry every coordinate's noise and
     curvature: one entry of 1e4 in a float32 cost would hide a sign error in another of
     size 1.  A row whose own line decides it (agree, disagree or kink) takes that
@@ -350,9 +350,9 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         own = np.abs(setup.f0) / s + est.curvature * stencils.reach(
             est.derivative, est.curvature, s, np.abs(setup.base[first.numeric.coords]))
         apart = verdicts.relative_error(a, est.derivative) >= verdicts.UNDECIDED_SHARE
-        # ... or known only to VAGUE_SHARE of itself or worse: an error of a few percent
-        # passes such an agreement.
-        vague = est.error >= VAGUE_SHARE * size
+        # ... or allowed to be VAGUE_SHARE of the value off or more (from its error
+        # estimate or the terms' rounding): an error of a few percent passes such a row.
+        vague = first.allowed >= VAGUE_SHARE * size
         share = size / own
     candidates = np.isin(first.verdict, ("agree", "noisy")) & (apart | vague) & \
         np.isfinite(size) & \

@@ -355,3 +355,4 @@ def test_a_five_percent_error_in_a_small_float32_entry_beside_large_ones_is_caug
         wrong[small] *= np.float32(factor)
         off = gk.compare_gradient(cost, w, wrong, seed=0)
         assert _verdicts(off)[f"x[{small}]"] == "disagree", (factor, off.to_text())
+
