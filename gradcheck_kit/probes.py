@@ -106,10 +106,11 @@ def _line_values(runner: CostRunner, v, t, f0):
     return values
 
 
-# A nonzero coordinate far smaller than its scale moves along the noise lines by at
-# most 1 / (4 OWN_SIZE_SHARE) of itself (4 t |x| OWN_SIZE_SHARE, t = 2^-20): at its scale, a
-# line would cross a pole at 0 (gammaln at 1e-6 beside an entry of 1e3) whose finite
-# values on the far side read as noise, too small next to the cost to be re-measured.
+# A nonzero coordinate far smaller than its scale moves along the noise lines by
+# 4 t OWN_SIZE_SHARE |x| at most: a quarter of itself at float64's spacing t = 2^-20 (not
+# yet at float32's, 2^-10).  At its scale, a line would cross a pole at 0 (gammaln at
+# 1e-6 beside an entry of 1e3) whose finite values on the far side read as noise, too
+# small next to the cost to be re-measured.
 OWN_SIZE_SHARE = 2.0 ** 16
 # ... but only down to this share of its scale: below it (x = 1e-17 in x^4) the stencils'
 # steps are no shorter than the lines' anyway, and the lines' view of the cost's third
