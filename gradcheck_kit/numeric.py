@@ -420,8 +420,5 @@ def term_sizes(setup: Setup, numeric: Numeric, third: bool = False) -> np.ndarra
     size = np.abs(np.nan_to_num(setup.base[numeric.coords]))
     curvature = est.curvature + bend
     seen = np.maximum(curvature * stencils.reach(est.derivative, curvature, s, size), slope / s)
-    terms = stencils.term_scale(est.derivative, setup.f0, s, seen)
-    if setup.eps_f >= LOW_PRECISION:
-        own = np.maximum(np.maximum(np.abs(est.derivative), abs(setup.f0) / s), seen)
-        terms = np.minimum(terms, LOW_PRECISION_TERMS * own)
-    return terms
+    cap = LOW_PRECISION_TERMS if setup.eps_f >= LOW_PRECISION else np.inf
+    return stencils.term_scale(est.derivative, setup.f0, s, seen, largest_cap=cap)

@@ -271,11 +271,17 @@ def reach(derivative, curvature, scale, size) -> np.ndarray:
     return np.fmin(scale, np.fmax(size, length))
 
 
-def term_scale(numeric, f0, scale, curvature_times_scale) -> np.ndarray:
+def term_scale(numeric, f0, scale, curvature_times_scale, largest_cap=np.inf) -> np.ndarray:
     """Size of the terms each gradient entry is summed from (see verdicts' module text):
-    the largest numeric entry, |f0| / scale, and |f2| * scale, per coordinate."""
+    the largest numeric entry, |f0| / scale, and |f2| * scale, per coordinate.  The
+    largest entry counts only up to largest_cap times the row's own sizes (its own
+    entry, |f0| / scale and |f2| * scale)."""
     largest = float(np.max(np.abs(numeric[np.isfinite(numeric)]), initial=0.0))
-    return np.maximum(np.maximum(largest, abs(f0) / scale), curvature_times_scale)
+    sizes = np.maximum(abs(f0) / scale, curvature_times_scale)
+    if largest_cap == np.inf:
+        return np.maximum(largest, sizes)
+    own = np.maximum(np.abs(numeric), sizes)
+    return np.maximum(own, np.minimum(largest, largest_cap * own))
 
 
 def complex_probe_agrees(complex_values, real_values, f0: float, hc: float, t: float,
