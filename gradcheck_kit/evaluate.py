@@ -723,8 +723,8 @@ class CostRunner:
         if now is None or now.shape != self.base.shape:
             changed = ["the structure of params"]
         else:
-            # Nothing changed (the common case) in one exact comparison of all values.
-            changed = [] if bool((now == self.base).all()) else \
+            # Nothing changed (the common case): one comparison of all values first.
+            changed = [] if _same_values(now, self.base) else \
                 [leaf.name for leaf in self.layout.leaves
                  if not np.array_equal(now[leaf.offset:leaf.offset + leaf.size],
                                        self.base[leaf.offset:leaf.offset + leaf.size],
