@@ -253,7 +253,7 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     settled = (np.isin(again.verdict, ("agree", "kink")) & (shown_off | no_looser)) | rough[bad]
     if not settled.any():
         return first
-    taken = _take_rows(first, bad[settled], again, np.flatnonzero(settled),
+    taken = _take_rows(first, [(bad[settled], again, np.flatnonzero(settled))],
                        lambda _k: "decided by real differences")
     agreed = [coordinate_name(setup.layout, int(c))
               for c, v in zip(coords[settled], again.verdict[settled]) if v == "agree"]
@@ -263,18 +263,21 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     return replace(taken, notes=notes)
 
 
-def _take_rows(first: Comparison, rows, again: Comparison, at, detail) -> Comparison:
-    """first, with its `rows` replaced by again's rows at positions `at`: numeric values
-    and steps, verdicts, allowances, and details (detail(k) where again's row has none)."""
+def _take_rows(first: Comparison, parts, detail) -> Comparison:
+    """first, with rows replaced by rechecks' rows: parts holds (rows, again, at), again's
+    rows at positions `at` replacing first's `rows`: numeric values and steps, verdicts,
+    allowances, and details (detail(k) where again's row has none).  One copy of first
+    for all parts."""
     numeric = first.numeric.copy()
-    numeric.estimates.put(rows, again.numeric.estimates.take(at))
-    numeric.h[rows] = again.numeric.h[at]
     verdict, allowed, details = first.verdict.copy(), first.allowed.copy(), list(first.details)
-    verdict[rows], allowed[rows] = again.verdict[at], again.allowed[at]
     own = first.own_allowed.copy()
-    own[rows] = again.own_allowed[at]
-    for j, k in zip(rows, at):
-        details[j] = again.details[k] or detail(k)
+    for rows, again, at in parts:
+        numeric.estimates.put(rows, again.numeric.estimates.take(at))
+        numeric.h[rows] = again.numeric.h[at]
+        verdict[rows], allowed[rows] = again.verdict[at], again.allowed[at]
+        own[rows] = again.own_allowed[at]
+        for j, k in zip(rows, at):
+            details[j] = again.details[k] or detail(k)
     return replace(first, numeric=numeric, verdict=verdict, allowed=allowed, details=details,
                    own_allowed=own)
 
@@ -313,7 +316,7 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
     if not settled.any():
         return first
     again = compare(setup, shorter, first.analytic, rtol, atol, analytic_eps)
-    return _take_rows(first, bad[settled], again, np.flatnonzero(settled),
+    return _take_rows(first, [(bad[settled], again, np.flatnonzero(settled))],
                       lambda k: f"step shortened to {shorter.h[k]:.3g}: the cost varies on "
                                 "a shorter length here")
 
@@ -359,9 +362,10 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         (size > verdicts.NEGLIGIBLE * own)
     rows = np.flatnonzero(candidates)
     rows = rows[np.argsort(-share[rows], kind="stable")][:OWN_LINE_ROWS]
-    out = first
-    if rows.size:
-        h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
+    if rows.size == 0:
+        return first
+    h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)
+    decided = []
     for j in rows:
         if setup.runner.interrupted:
             break
@@ -374,9 +378,11 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         numeric = numeric_derivatives(alone, "richardson", np.array([c]), h)
         again = compare(alone, numeric, first.analytic, rtol, atol, analytic_eps)
         if again.verdict[0] in ("agree", "disagree", "kink"):
-            out = _take_rows(out, np.array([j]), again, np.array([0]),
-                             lambda _k: "decided by the noise along this coordinate alone")
-    return out
+            decided.append((np.array([j]), again, np.array([0])))
+    if not decided:
+        return first
+    return _take_rows(first, decided,
+                      lambda _k: "decided by the noise along this coordinate alone")
 
 
 def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
