@@ -12,6 +12,7 @@ from scipy.special import gammaln, ndtri, psi
 from scipy.stats import norm
 
 import gradcheck_kit as gk
+from float32_fits import tank_fit
 from mgh_problems import BY_NAME
 
 FACTOR = 1.001       # a 0.1% error, the size a planted-bug corpus hides
@@ -268,28 +269,11 @@ def test_a_sign_error_beside_a_large_float32_entry_is_caught(method):
             assert _verdicts(off)[f"ws[{k}]"] == "disagree", (factor, off.to_text())
 
 
-# A float32 fit of a draining tank's level, h(t) = h0 - a t^2 + b t, with h0 near 900 and
-# a, b of size 1; least squares, derivatives textbook (common practice).  The rounding of
-# h0's term gave b an error estimate of 2% of its value, so a 5% error in b passed.
-def _tank_f32(h0):
-    t = np.linspace(0.5, 20.0, 40).astype(np.float32)
-    level = (910.0 - 1.05 * t ** 2 + 0.4 * t +
-             np.random.default_rng(11).normal(0, 2, t.size)).astype(np.float32)
-    params = {"h0": np.float32(h0), "a": np.float32(1.0), "b": np.float32(0.5)}
-
-    def cost(p):
-        r = p["h0"] - p["a"] * t ** 2 + p["b"] * t - level
-        return np.mean(r * r)
-
-    def gradient(p):
-        r = p["h0"] - p["a"] * t ** 2 + p["b"] * t - level
-        return {"h0": 2 * np.mean(r), "a": -2 * np.mean(r * t ** 2), "b": 2 * np.mean(r * t)}
-    return cost, gradient, params
-
-
+# A float32 fit of a draining tank's level (float32_fits.tank_fit): the rounding of h0's
+# term gave b an error estimate of 2% of its value, so a 5% error in b passed.
 @pytest.mark.parametrize("h0", [700.0, 850.0, 900.0, 1200.0])
 def test_a_five_percent_error_beside_a_large_float32_intercept_is_caught(h0):
-    cost, gradient, params = _tank_f32(h0)
+    cost, gradient, params = tank_fit(h0)
     right = gk.compare_gradient(cost, params, gradient, seed=0)
     assert right.passed, right.to_text()
     for name in ("a", "b"):
