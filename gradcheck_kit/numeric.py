@@ -108,6 +108,8 @@ def shorten_long_steps(setup: Setup, numeric: Numeric) -> Numeric:
     rows = np.flatnonzero(long)
     h = out.h[rows]
     moved = np.zeros(rows.size)     # how far the slopes moved at the last shortening
+    last = out.estimates.take(rows)  # the last pass's values of the rows still going
+    unconfirmed = np.zeros(len(out.coords))   # the last jump of a row that ended on one
     for _ in range(LONG_STEP_TIMES):
         if rows.size == 0 or setup.runner.interrupted:
             break
@@ -123,24 +125,38 @@ def shorten_long_steps(setup: Setup, numeric: Numeric) -> Numeric:
             better = ok & ((again.estimates.error * np.abs(old.derivative) <
                             old.error * np.abs(again.estimates.derivative)) |
                            (was_kink & ~new_kinks.found))
+            # A value that moved by more than both error estimates proves the longer
+            # step's estimate wrong, and leaves the shorter one's (the same model) unproven:
+            # one more shortening must confirm it, whatever rounding says; a row that
+            # ends on such a jump is known only to within it (a smooth bend on a length
+            # the precision cannot resolve: float32, a smoothing width of 1e-3).
+            jump = np.abs(again.estimates.derivative - last.derivative)
+            jumped = ok & (jump > again.estimates.error + last.error)
+        # The curvature kept for the terms (term_sizes) is the longer step's where that is
+        # smaller: a bend on a short length curves the cost that much only there.
+        again.estimates.curvature = np.fmin(again.estimates.curvature, old.curvature)
         _adopt(out, rows[better], again, np.flatnonzero(better))
         # Steady: both slopes moved by less than a tenth of the jump between them, and by
         # no more than at the shortening before (within their slack).  At a kink the
         # slopes settle as the step shrinks (by h |f2|); a smooth cost that bends on a
         # length L shorter than the step (sqrt(x^2 + 1e-12)) looks kinked too, but its
         # slopes move by about L / h, more at each shorter step.
-        jump = STEADY_KINK * np.abs(kinks.high[rows] - kinks.low[rows])
+        spread = STEADY_KINK * np.abs(kinks.high[rows] - kinks.low[rows])
         move = np.maximum(np.abs(new_kinks.low - kinks.low[rows]),
                           np.abs(new_kinks.high - kinks.high[rows]))
-        steady_kink = new_kinks.found & was_kink & (move <= jump) & \
+        steady_kink = new_kinks.found & was_kink & (move <= spread) & \
             (move <= np.maximum(moved, new_kinks.slack))
-        # Rounding ends the search, except for a kink whose slopes still move: its
-        # rounding may be a bend on a short length that the noise line took for noise.
+        # Rounding ends the search, except for a kink not yet shown steady: its rounding
+        # may be a bend on a short length that the noise line took for noise.
         rounding_bound = (again.estimates.rounding >= again.estimates.truncation) & \
-            ~(new_kinks.found & was_kink)
-        go_on = ok & still & ~steady_kink & ~rounding_bound
+            ~new_kinks.found
+        unconfirmed[rows] = np.where(jumped, jump, 0.0)
+        go_on = ok & ((still & ~rounding_bound) | jumped) & ~steady_kink
         kinks = _rows_kinks(kinks, rows, new_kinks, len(out.coords))
-        rows, h, moved = rows[go_on], h[go_on], move[go_on]
+        last.put(np.flatnonzero(ok), again.estimates.take(np.flatnonzero(ok)))
+        keep = np.flatnonzero(go_on)
+        rows, h, moved, last = rows[keep], h[keep], move[keep], last.take(keep)
+    out.estimates.truncation = np.maximum(out.estimates.truncation, unconfirmed)
     return out
 
 
@@ -422,3 +438,43 @@ def term_sizes(setup: Setup, numeric: Numeric, third: bool = False) -> np.ndarra
     seen = np.maximum(curvature * stencils.reach(est.derivative, curvature, s, size), slope / s)
     cap = LOW_PRECISION_TERMS if setup.eps_f >= LOW_PRECISION else np.inf
     return stencils.term_scale(est.derivative, setup.f0, s, seen, largest_cap=cap)
+
+
+# measured_extrapolation: the step error of Richardson's value R(h) = (4 C(h/2) - C(h)) / 3
+# measured from one more central difference, C(2h), instead of bounded by its gap to
+# C(h/2).  With C(t) = f1 + a t^2 + b t^4, R(2h) - R(h) = 15 R(h)'s error (the next column
+# of the extrapolation tableau).  Trusted only where the differences show that expansion:
+# C(2h) - C(h) is 4 times C(h) - C(h/2) (within RATIO_SLACK) and the latter is
+# RESOLVED_ABOVE times its rounding, or all three are equal within their rounding.  Then
+# the error is MEASURED_SAFETY times the measured one plus its own rounding, never above
+# the gap.
+RATIO_SLACK = 0.25
+RESOLVED_ABOVE = 8.0
+MEASURED_SAFETY = 2.0
+
+
+def measured_extrapolation(setup: Setup, coords: np.ndarray, h: np.ndarray) -> tuple:
+    """Richardson values at `coords` (steps h aligned with them) whose truncation error is
+    measured where the cost follows the expansion: (Numeric, measured) with measured the
+    rows where it was."""
+    rich = one_pass(setup, "richardson", coords, h)
+    wide = one_pass(setup, "central", coords, 2 * h)
+    est, f = rich.estimates, rich.values.real
+    with np.errstate(all="ignore"):
+        c1 = (f[:, 0] - f[:, 1]) / (2 * h)
+        c_half = (f[:, 2] - f[:, 3]) / h
+        c2 = wide.estimates.derivative
+        near, far = c1 - c_half, c2 - c1
+        # Rounding bounds: |f| noise over the steps, summed over each difference's values.
+        unit = est.noise / h
+        ratio = far / near
+        # ... or all three differences equal within their rounding (a quadratic along
+        # this coordinate): no step error shows at any of the three steps.
+        steady = (np.abs(near) <= 2 * 3 * unit) & (np.abs(far) <= 2 * 1.5 * unit)
+        measured = (((np.abs(near) > RESOLVED_ABOVE * 3 * unit) &
+                     (np.abs(ratio - 4) < 4 * RATIO_SLACK)) | steady) & \
+            ~rich.failed & ~wide.failed & np.isfinite(c2)
+        error = MEASURED_SAFETY * (np.abs((4 * c1 - c2) / 3 - est.derivative) / 15 + 0.3 * unit)
+    out = rich.copy()
+    out.estimates.truncation = np.where(measured, np.minimum(error, est.gap), est.truncation)
+    return out, measured

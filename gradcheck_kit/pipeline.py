@@ -22,7 +22,8 @@ from .evaluate import CostRunner, SeededCall, draw_seed
 from .frameworks import takes_framework_values
 from .hints import central_error, central_tolerances, uphill_hint
 from .hints import hints as mismatch_hints
-from .numeric import Numeric, long_for_length, numeric_derivatives, term_sizes, walk_down
+from .numeric import (Numeric, long_for_length, measured_extrapolation, numeric_derivatives,
+                      term_sizes, walk_down)
 from .probes import Setup
 from .reevaluate import Reevaluation, remainder_along
 from .report import GradientReport, RowColumns, outside_note
@@ -189,7 +190,16 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
         kinks = stencils.find_kinks(numeric.method, numeric.values, setup.f0, numeric.h,
                                     est.noise)
     details = list(numeric.details)
-    verdict = verdicts.apply_kinks(verdict, a, kinks, allowed, details)
+    # Between the slopes: within their own slack (their step error and rounding) and the
+    # analytic values' rounding; the central value's error estimate says nothing about
+    # the one-sided slopes (in float32 it doubled the margin and let a sign error pass).
+    if rtol is None and atol is None:
+        with np.errstate(all="ignore"):
+            margin = verdicts.allowed_difference(a, est.derivative, 0 * est.error, terms=terms,
+                                                 eps_f=setup.eps_f, eps_a=analytic_eps)
+    else:
+        margin = allowed
+    verdict = verdicts.apply_kinks(verdict, a, kinks, margin, details)
     if setup.lines is not None and setup.lines.quantized:
         # A piecewise-constant cost flat over a whole stencil says nothing about the
         # derivative: a zero there is not evidence for a zero gradient.
@@ -357,8 +367,10 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         # estimate or the terms' rounding): an error of a few percent passes such a row.
         vague = first.allowed >= VAGUE_SHARE * size
         share = size / own
-    candidates = np.isin(first.verdict, ("agree", "noisy")) & (apart | vague) & \
-        np.isfinite(size) & \
+    # Kinks too: a smooth bend shorter than the step looks like one, and the lines' noise
+    # (that bend, read as noise elsewhere) keeps the step from shrinking to resolve it.
+    candidates = ((np.isin(first.verdict, ("agree", "noisy")) & (apart | vague)) |
+                  (first.verdict == "kink")) & np.isfinite(size) & \
         (size > verdicts.NEGLIGIBLE * own)
     rows = np.flatnonzero(candidates)
     rows = rows[np.argsort(-share[rows], kind="stable")][:OWN_LINE_ROWS]
@@ -383,6 +395,51 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         return first
     return _take_rows(first, decided,
                       lambda _k: "decided by the noise along this coordinate alone")
+
+
+# Agreeing rows apart by LOOSE of their value or more are measured again
+# (measured_extrapolation), up to this many per check (six evaluations each), those
+# nearest their allowance first.
+MEASURED_ROWS = 8
+
+
+def measured_rows(setup: Setup, first: Comparison, rtol, atol,
+                  analytic_eps=None) -> Comparison:
+    """Recheck the agreements a 0.1% error could hide in: values apart by LOOSE of
+    themselves or more, which pass only by their error bound.  A fourth-order value's
+    step-error bound, its gap to the second-order value it embeds, can be 30 times its
+    real error in float32 (where rounding keeps the step long), and a central value's
+    rounding there is larger than a longer step's.  Measured in a Richardson pass with
+    one more central difference, the step error is the value's own; a row rechecked with
+    a tighter allowance takes that verdict and its numbers.  Values apart by less than
+    LOOSE are left to their bound: a float64 derivative of record that cancels (erfcx's,
+    2.5e-7 off) would otherwise be flagged for its own rounding."""
+    if rtol is not None or atol is not None or setup.noisy or setup.lines is None or \
+            setup.lines.quantized:
+        return first
+    est = first.numeric.estimates
+    a = first.analytic[first.numeric.coords]
+    with np.errstate(all="ignore"):
+        apart = np.abs(a - est.derivative)
+        over = apart / first.allowed
+        candidates = (first.verdict == "agree") & (apart > LOOSE * np.abs(est.derivative)) & \
+            np.isfinite(over)
+    rows = np.flatnonzero(candidates)
+    rows = rows[np.argsort(-over[rows], kind="stable")][:MEASURED_ROWS]
+    if rows.size == 0 or setup.runner.interrupted:
+        return first
+    coords = first.numeric.coords[rows]
+    h = plan.steps("richardson", setup.base, setup.layout, None, setup.eps)[coords]
+    numeric, measured = measured_extrapolation(setup, coords, h)
+    again = compare(setup, numeric, first.analytic, rtol, atol, analytic_eps)
+    # Only a measured error decides: where the expansion did not show, the step may be
+    # too long for the cost there (a row shortened for that reason) and the gap no bound.
+    take = measured & np.isin(again.verdict, ("agree", "disagree")) & \
+        (again.allowed < first.allowed[rows])
+    if not take.any():
+        return first
+    return _take_rows(first, [(rows[take], again, np.flatnonzero(take))],
+                      lambda _k: "step error measured from one more difference")
 
 
 def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
@@ -511,6 +568,7 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
     if step is None:
         comp = shorter_steps(setup, comp, rtol, atol, analytic_eps)
         comp = own_lines(setup, comp, rtol, atol, analytic_eps)
+        comp = measured_rows(setup, comp, rtol, atol, analytic_eps)
     report = finish(setup, comp, used, analytic_eps=analytic_eps,
                     allow_undecided=allow_undecided,
                     probe_unsampled=_worth_probing(setup.layout.size - coords.size, used),

@@ -4,7 +4,7 @@ Default rule (no rtol / atol given).  A coordinate agrees when
 
     |analytic - numeric| <= 2 * error_estimate + share * (|analytic| + terms)
 
-    share = min(1000 * eps_f, 1e-3, max(3e-5, 10 * eps_f)): 1000 eps_f for float64, 250
+    share = min(1000 * eps_f, 1e-3, max(1e-5, 10 * eps_f)): 1000 eps_f for float64, 84
     for float32, 1e-3 (1 eps) for float16
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
@@ -35,7 +35,7 @@ ANALYTIC_ROUNDING = 1000.0
 # and still be right (2 x erfcx(x) - 2 / sqrt(pi) at x = 20), while 1000 float32
 # epsilons, 1.2e-4, would hide a 0.1% error in a float32 loss; in float16 the numeric
 # error estimates decide.
-ANALYTIC_ROUNDING_SHARE = 3e-5
+ANALYTIC_ROUNDING_SHARE = 1e-5
 ANALYTIC_ROUNDING_LOW = 10.0
 ANALYTIC_ROUNDING_CAP = 1e-3
 ANALYTIC_VALUE_ROUNDING = 16.0
