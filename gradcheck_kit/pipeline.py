@@ -175,6 +175,10 @@ class Comparison:
     own_allowed: np.ndarray = None
 
 
+def _dtype_eps(setup: Setup) -> float:
+    return float(np.finfo(setup.runner.output_dtype).eps)
+
+
 def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
             analytic_eps=None) -> Comparison:
     """Verdicts for one set of numeric derivatives.  analytic_eps: the precision of the
@@ -185,6 +189,7 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
     with np.errstate(all="ignore"):
         allowed = verdicts.allowed_difference(a, est.derivative, est.error, terms=terms,
                                               eps_f=setup.eps_f, rtol=rtol, atol=atol,
+                                              eps_dtype=_dtype_eps(setup),
                                               eps_a=analytic_eps)
         verdict = verdicts.decide(a, est.derivative, allowed, numeric.failed)
         kinks = stencils.find_kinks(numeric.method, numeric.values, setup.f0, numeric.h,
@@ -196,7 +201,8 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
     if rtol is None and atol is None:
         with np.errstate(all="ignore"):
             margin = verdicts.allowed_difference(a, est.derivative, 0 * est.error, terms=terms,
-                                                 eps_f=setup.eps_f, eps_a=analytic_eps)
+                                                 eps_f=setup.eps_f, eps_a=analytic_eps,
+                                                 eps_dtype=_dtype_eps(setup))
     else:
         margin = allowed
     verdict = verdicts.apply_kinks(verdict, a, kinks, margin, details)
@@ -215,7 +221,8 @@ def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
     if rtol is not None or atol is not None:
         with np.errstate(all="ignore"):
             own = verdicts.allowed_difference(a, est.derivative, est.error, terms=terms,
-                                              eps_f=setup.eps_f, eps_a=analytic_eps)
+                                              eps_f=setup.eps_f, eps_a=analytic_eps,
+                                              eps_dtype=_dtype_eps(setup))
     return Comparison(numeric, analytic, allowed, verdict, kinks, details, own_allowed=own)
 
 

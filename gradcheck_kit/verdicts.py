@@ -4,8 +4,9 @@ Default rule (no rtol / atol given).  A coordinate agrees when
 
     |analytic - numeric| <= 2 * error_estimate + share * (|analytic| + terms)
 
-    share = min(1000 * eps_f, 1e-3, max(1e-5, 10 * eps_f)): 1000 eps_f for float64, 84
-    for float32, 1e-3 (1 eps) for float16
+    share = r(eps) + 10 (eps_f - eps), at most r(eps_f)
+    r(e) = min(1000 e, 1e-3, max(1e-5, 10 e)): 1000 eps for float64, 84 for float32,
+    1e-3 (1 eps) for float16; eps the cost dtype's epsilon
 
 error_estimate is the numeric derivative's own estimated error (truncation plus
 rounding, from stencils.py).  The second part allows for rounding in the
@@ -39,18 +40,26 @@ ANALYTIC_ROUNDING_SHARE = 1e-5
 ANALYTIC_ROUNDING_LOW = 10.0
 ANALYTIC_ROUNDING_CAP = 1e-3
 ANALYTIC_VALUE_ROUNDING = 16.0
+ANALYTIC_NOISE = 10.0
 
 
 def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None,
-                       eps_a=None):
+                       eps_a=None, eps_dtype=None):
     """How far apart analytic and numeric may be, per coordinate (see module text).
 
     eps_a is the precision of the analytic values themselves (a float32 gradient of a
-    float64 cost carries float32 rounding).
+    float64 cost carries float32 rounding).  eps_dtype: the epsilon of the cost's dtype,
+    where eps_f is a measured noise above it (None: eps_f is the dtype's).
     """
     if rtol is None and atol is None:
-        share = min(ANALYTIC_ROUNDING * eps_f, ANALYTIC_ROUNDING_CAP,
-                    max(ANALYTIC_ROUNDING_SHARE, ANALYTIC_ROUNDING_LOW * eps_f))
+        eps_d = eps_f if eps_dtype is None else min(eps_dtype, eps_f)
+        # A cost whose values are noisier than its dtype (a factorisation, an inner
+        # solve) may hand over a gradient as noisy: ANALYTIC_NOISE times that noise on
+        # top of the dtype's share, not the cancellation factor again (that gave a GP
+        # likelihood's log-noise entry, 1e-12 noisy, an allowance that passed a 0.1%
+        # error); never more than the share of eps_f itself.
+        share = min(_rounding_share(eps_d) + ANALYTIC_NOISE * (eps_f - eps_d),
+                    _rounding_share(eps_f))
         if eps_a is not None and eps_a > eps_f:
             # Values stored in a lower precision than the cost's carry its rounding on top:
             # about eps_a relative to what they are summed from, no more, so that a 0.1%
@@ -58,6 +67,11 @@ def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, ato
             share += ANALYTIC_VALUE_ROUNDING * eps_a
         return SAFETY * error + share * (np.abs(analytic) + terms)
     return (atol or 0.0) + (rtol or 0.0) * np.abs(numeric)
+
+
+def _rounding_share(eps):
+    return min(ANALYTIC_ROUNDING * eps, ANALYTIC_ROUNDING_CAP,
+               max(ANALYTIC_ROUNDING_SHARE, ANALYTIC_ROUNDING_LOW * eps))
 
 
 def relative_error(analytic, numeric):
