@@ -5,10 +5,15 @@ Exit status:
 
     0    every check as expected (a declared planted bug counts when it is found)
     1    a check found a mismatch, or missed a declared planted bug
-    2    a usage error or bad input: one line on stderr, no traceback
+    2    a usage error or bad input: one line on stderr, no traceback; also a case
+         that could not run (its params or gradient refused, its cost raising at the
+         base point) when no other case found a mismatch
     130  interrupted (Ctrl-C): the partial report is printed and, with --json, written
     141  the output closed (`| head -1`) before every case ran, and none of those
          that ran failed (the status a shell gives a program ended by SIGPIPE)
+
+When several apply, the first of 130, 1, 2, 141 wins: a case that could not run does
+not stop the others, and a mismatch found in one of them still exits 1.
 
 JSON written by --json, one shape whatever the number of cases:
 
@@ -20,8 +25,10 @@ JSON written by --json, one shape whatever the number of cases:
     stopped         null, "interrupted" or "output closed"
     passed          complete, and every check as expected
     checks          [{case, passed, as_expected, expect_mismatch, planted_bug, interrupted,
-                      report}]: planted_bug is null for an ordinary case, else "found" or
-                      "not found"; report is a gradient report (schema in report.py)
+                      could_not_run, report}]: planted_bug is null for an ordinary case, else
+                      "found" or "not found"; could_not_run is null, or for a case that could
+                      not run the message saying why (its report is then null); report is a
+                      gradient report (schema in report.py)
     not_run         names of the cases that never ran (after an interrupt or a closed output)
 """
 from __future__ import annotations
@@ -67,9 +74,10 @@ checked as declared when neither --gradient nor --params is given.  A
 stochastic case keeps a seed it declares over --seed.
 
 Exit status: 0 all checks as expected, 1 a mismatch, 2 a usage error or bad
-input, 130 interrupted, 141 the output closed before every case ran.  A case
-declared with expect_mismatch=True (a planted bug) is as expected when its
-mismatch is found.
+input (also a case that could not run, when no case found a mismatch; the
+other cases still run), 130 interrupted, 141 the output closed before every
+case ran.  A case declared with expect_mismatch=True (a planted bug) is as
+expected when its mismatch is found.
 
 Checking a module imports it, which runs its code: only check code you trust.
 """
@@ -625,27 +633,41 @@ def _guarded_stdout():
 @dataclass
 class _Outcome:
     """One case as it ended: its report, the text printed for it, and the case's result
-    (None for a check cut short by Ctrl-C, which has only its partial report)."""
+    (None for a check cut short by Ctrl-C, which has only its partial report).  A case
+    that could not run has no report, and `error` says why."""
     label: str
     case: Case
     report: object
     text: str
     result: CaseResult | None = None
+    error: str | None = None
+
+    @classmethod
+    def could_not_run(cls, label: str, case: Case, message: str) -> "_Outcome":
+        return cls(label, case, None, f"COULD NOT RUN: {message}", error=message)
+
+    @property
+    def interrupted(self) -> bool:
+        return self.report is not None and self.report.interrupted
 
     @property
     def passed(self) -> bool:
+        if self.error is not None:
+            return False
         return self.result.passed if self.result is not None else self.report.passed
 
     @property
     def found(self) -> bool:
         """A mismatch (or another failure) was seen, even if the check was cut short."""
+        if self.error is not None:
+            return False
         if self.report.interrupted:
             return bool(self.report.mismatches)
         return not self.passed
 
     @property
     def as_expected(self) -> bool:
-        if self.report.interrupted:
+        if self.error is not None or self.report.interrupted:
             return False
         if self.result is not None:
             return self.result.as_expected
@@ -657,6 +679,8 @@ class _Outcome:
         return "found" if self.found else "not found"
 
     def quiet_line(self) -> str:
+        if self.error is not None:
+            return f"COULD NOT RUN: {self.error.splitlines()[0]}  [{self.label}]"
         line = self.report.to_text().splitlines()[0]
         planted = self.planted_bug()
         mark = "" if planted is None else (
@@ -667,8 +691,9 @@ class _Outcome:
     def to_dict(self) -> dict:
         return {"case": self.label, "passed": self.passed,
                 "as_expected": self.as_expected, "expect_mismatch": self.case.expect_mismatch,
-                "planted_bug": self.planted_bug(), "interrupted": self.report.interrupted,
-                "report": self.report.to_dict()}
+                "planted_bug": self.planted_bug(), "interrupted": self.interrupted,
+                "could_not_run": self.error,
+                "report": None if self.report is None else self.report.to_dict()}
 
 
 @dataclass
@@ -720,11 +745,19 @@ class _Run:
     def complete(self) -> bool:
         return self.stopped != "interrupted" and not self.not_run
 
+    @property
+    def could_not_run(self) -> list:
+        return [o for o in self.outcomes if o.error is not None]
+
     def exit_code(self) -> int:
+        """The worst outcome, in this order: interrupted, a mismatch (or a planted bug
+        missed), a case that could not run, the output closed, all as expected."""
         if self.stopped == "interrupted":
             return EXIT_INTERRUPTED
-        if any(not o.as_expected for o in self.outcomes):
+        if any(not o.as_expected for o in self.outcomes if o.error is None):
             return EXIT_MISMATCH
+        if self.could_not_run:
+            return EXIT_USAGE
         if self.not_run:
             return EXIT_OUTPUT_CLOSED
         return EXIT_OK
@@ -799,9 +832,10 @@ def _run_cases(args, run: _Run, importer: _Importer) -> None:
             run.doing = f"checking {label}"
             try:
                 outcome = one(args, label, c, executor)
-            except CheckInputError as exc:
-                raise CheckInputError(f"case {label}: {exc}" if len(cases) > 1 else str(exc)) \
-                    from exc
+            except (CheckInputError, UsageError) as exc:
+                # this case cannot run: say so, and go on with the others
+                _say(f"error: case {label}: {exc}" if len(cases) > 1 else f"error: {exc}")
+                outcome = _Outcome.could_not_run(label, c, str(exc))
             current = None
             run.show(outcome)
     except KeyboardInterrupt as exc:
@@ -828,6 +862,8 @@ def _write_outputs(args, run: _Run) -> None:
     if getattr(args, "plot", None) and run.stopped != "interrupted":
         many = len(run.labels) > 1
         for o in run.outcomes:
+            if o.report is None:      # the case could not run: nothing to draw
+                continue
             run.doing = f"drawing the figure of {o.label}"
             path = _figure_path(args.plot, o.label, many)
             resolve_target(path, "--plot")
