@@ -50,12 +50,14 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .cases import Case, CaseResult, check_case, declared_cases, is_strategy
+from .cases import (Case, CaseResult, check_case, declared_cases, is_params_function,
+                    is_strategy)
 from .errors import CheckInputError, CheckInterrupted, LongCheckWarning
 from .frameworks import load_torch_params
 from .files import (ParamsFileError, UnwritablePathError, check_writable, load_params,
                     resolve_target, write_atomically)
-from .plan import METHOD_CHOICES
+from .plan import METHOD_CHOICES, choose_coordinates
+from .tree import flatten
 
 EXIT_OK, EXIT_MISMATCH, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_OUTPUT_CLOSED = 0, 1, 2, 130, 141
 LOADED_PREFIX = "gradcheck_target_"   # module names given to files loaded by path
@@ -134,7 +136,8 @@ def coordinates_option(values):
 
     One integer K checks K coordinates per parameter.  Otherwise every value names a
     coordinate as the report prints it: ``W[0, 1]`` (an index), ``W[5]`` (the flat
-    position within W), ``bias`` (a scalar parameter).
+    position within W), ``bias`` (a whole parameter: a scalar, or every entry of an
+    array, see `case_coordinates`).
 
     Parameters
     ----------
@@ -184,6 +187,49 @@ def coordinates_option(values):
             item = parts[0] if len(parts) == 1 else parts
         chosen.setdefault(match.group("name"), []).append(item)
     return chosen
+
+
+def case_coordinates(chosen, params):
+    """The --coordinates names for one case's params: a bare name of an array parameter
+    (``()``) stands for every entry of it; the names and indices are checked here.
+
+    Parameters
+    ----------
+    chosen : dict
+        From `coordinates_option`.
+    params : structure
+        The case's params.
+
+    Returns
+    -------
+    dict or None
+        compare_gradient's ``coordinates``; None when params cannot be flattened
+        (the check itself then says why).
+
+    Raises
+    ------
+    CheckInputError
+        A name that is not a parameter of `params`, or an index out of range.
+
+    Examples
+    --------
+    >>> case_coordinates({"b": [()], "W": [(0, 1)]},
+    ...                  {"W": np.zeros((2, 2)), "b": np.zeros(3)})
+    {'b': [0, 1, 2], 'W': [(0, 1)]}
+    """
+    try:
+        _, layout = flatten(params)
+    except CheckInputError:
+        return None
+    leaves = {leaf.name: leaf for leaf in layout.leaves}
+    out = {}
+    for name, items in chosen.items():
+        leaf = leaves.get(name)
+        if leaf is not None and leaf.shape != () and () in items:
+            items = [i for i in items if i != ()] + list(range(leaf.size))
+        out[name] = items
+    choose_coordinates(layout, out, None, np.zeros(layout.size))   # raises for a bad name
+    return out
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -798,9 +844,49 @@ def _locate_one(args, label: str, c: Case, executor) -> _Outcome:
     return _Outcome(label, c, report, result.to_text(), result)
 
 
+def _known_params(args, c):
+    """The params of a gradient case, when known without drawing from a strategy."""
+    if c.kind != "gradient" or is_strategy(c.params):
+        return None
+    if is_params_function(c.params):
+        seed = args.seed if args.seed is not None else c.options.get("seed")
+        try:
+            return c.params(np.random.default_rng(seed))
+        except Exception:  # noqa: BLE001 - the check itself says what the function raised
+            return None
+    return c.params
+
+
+def _coordinates_by_case(args, cases: list) -> dict:
+    """label -> the --coordinates of that case, checked against every case before any
+    runs: a name some case lacks stops the command with one line naming those cases."""
+    chosen = args.chosen_coordinates
+    if not isinstance(chosen, dict):
+        return {label: chosen for label, _ in cases}
+    by_case, lacking, named = {}, [], ", ".join(map(repr, chosen))
+    for label, c in cases:
+        params = _known_params(args, c)
+        if params is None:
+            by_case[label] = chosen
+            continue
+        try:
+            by_case[label] = case_coordinates(chosen, params) or chosen
+        except CheckInputError as exc:
+            text = str(exc).removeprefix("coordinates: ").removeprefix("coordinates ")
+            lacking.append((label, text))
+    if lacking:
+        where = "; ".join(f"case {label}: {text}" for label, text in lacking) \
+            if len(cases) > 1 else lacking[0][1]
+        hint = (" (name one case as TARGET:COST to check coordinates of its own)"
+                if len(cases) > 1 else "")
+        raise UsageError(f"--coordinates {named}: {where}{hint}; nothing was checked")
+    return by_case
+
+
 def _check_one(args, label: str, c: Case, executor) -> _Outcome:
     overrides = {"method": args.method, "seed": args.seed, "rtol": args.rtol, "atol": args.atol,
-                 "coordinates": args.chosen_coordinates, "executor": executor,
+                 "coordinates": args.coordinates_by_case.get(label, args.chosen_coordinates),
+                 "executor": executor,
                  "progress": False if args.no_progress else None,
                  "with_rng": True if getattr(args, "with_rng", False) else None}
     try:
@@ -823,6 +909,8 @@ def _run_cases(args, run: _Run, importer: _Importer) -> None:
         run.doing = f"importing {_split_target(args.target)[0]}"
         cases = _collect_cases(args, importer)
         run.labels = [label for label, _ in cases]
+        args.coordinates_by_case = _coordinates_by_case(args, cases) \
+            if args.command == "check" else {}
         executor, owner = _make_executor(args)
         if args.scheduler is not None:
             _ship_modules_by_value(importer.loaded)

@@ -116,3 +116,57 @@ def test_no_figure_is_drawn_for_a_case_that_cannot_run(tmp_path, capsys, quiet):
     assert code == 2
     assert sorted(p.name for p in tmp_path.glob("*.png")) == \
         ["fig-right.png", "fig-right_again.png"]
+
+
+# Two cases with different parameters: a least-squares fit with a weight per data point
+# (w, b) and a scale fit (s).
+TWO_FITS = textwrap.dedent("""
+    import numpy as np
+    import gradcheck_kit as gk
+
+    X = np.array([0.0, 1.0, 2.0])
+    Y = np.array([1.0, 2.9, 5.2])
+
+    def line(p):
+        return float(np.sum((p["w"] * X + p["b"] - Y) ** 2))
+
+    def line_grad(p):
+        r = p["w"] * X + p["b"] - Y
+        return {"w": 2 * r * X, "b": float(2 * r.sum())}
+
+    def scale(p):
+        return float(np.sum((p["s"] * X - Y) ** 2))
+
+    def scale_grad(p):
+        return {"s": float(2 * np.sum((p["s"] * X - Y) * X))}
+
+    gk.case(gradient=line_grad, params={"w": np.array([1.0, 2.0, 1.5]), "b": 0.5})(line)
+    gk.case(gradient=scale_grad, params={"s": 1.5})(scale)
+""")
+
+
+def test_coordinates_naming_a_parameter_some_cases_lack_stops_before_any_runs(tmp_path,
+                                                                             capsys):
+    (tmp_path / "two.py").write_text(TWO_FITS)
+    code, out, err = run(capsys, tmp_path / "two.py", "--coordinates", "w[1]")
+    assert code == 2 and out == ""
+    assert err == ("gradcheck-kit: error: --coordinates 'w': case scale: no parameter named "
+                   "'w'; parameters are ['s'] (name one case as TARGET:COST to check "
+                   "coordinates of its own); nothing was checked\n")
+
+
+def test_coordinates_out_of_range_stops_before_any_runs(tmp_path, capsys):
+    (tmp_path / "two.py").write_text(TWO_FITS)
+    code, out, err = run(capsys, f"{tmp_path / 'two.py'}:line", "--coordinates", "w[3]")
+    assert code == 2 and out == ""
+    assert "--coordinates 'w': for 'w': flat index 3 is out of range for 3 entries" in err
+
+
+def test_a_bare_name_of_an_array_parameter_checks_every_entry(tmp_path, capsys):
+    (tmp_path / "two.py").write_text(TWO_FITS)
+    report = tmp_path / "run.json"
+    code, _, err = run(capsys, f"{tmp_path / 'two.py'}:line", "--coordinates", "w",
+                       "--coordinates", "b", "--json", report)
+    assert code == 0, err
+    rows = json.loads(report.read_text())["checks"][0]["report"]["rows"]
+    assert sorted(r["name"] for r in rows) == ["b", "w[0]", "w[1]", "w[2]"]
