@@ -407,7 +407,9 @@ class GradientAudit:
     def compare(self, cost, params, gradient=None, **options):
         """compare_gradient with the session's options; the check is recorded."""
         __tracebackhide__ = True
+        from .assertions import check_option_names
         from .pipeline import compare_gradient
+        check_option_names(options, "gradient_audit")
         report = compare_gradient(cost, params, gradient, **self._options(options))
         self.reports.append(report)
         # A failed check is listed under "gradient checks that failed" only when its test

@@ -130,3 +130,17 @@ def test_a_gradient_function_returning_none_says_so(params, expected):
     assert isinstance(error, gk.CheckTypeError)
     assert text == ("the gradient function returned None (a missing return statement?); "
                     + expected)
+
+
+def test_a_misspelt_option_names_the_nearest_one_like_a_case_does():
+    text, error = message(call=gk.assert_gradient_matches, cost=quad, params=PARAMS,
+                          gradient=quad_grad, methd="central")
+    assert isinstance(error, TypeError)
+    assert text == "assert_gradient_matches: unknown option 'methd'; did you mean 'method'?"
+    with pytest.raises(CheckInputError, match="case: unknown option 'methd'; did you mean "
+                                              "'method'\\? Expected examples, name"):
+        gk.case(quad_grad, params=PARAMS, methd="central")
+    text, _ = message(call=gk.assert_gradient_matches, cost=quad, params=PARAMS,
+                      gradient=quad_grad, qqqq=1)
+    assert text.startswith("assert_gradient_matches: unknown option 'qqqq'; expected one of "
+                           "method, step, rtol, atol")

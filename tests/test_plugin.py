@@ -220,3 +220,13 @@ def test_the_fixture_lists_a_failed_check_only_when_its_test_fails(pytester):
     assert [(c["id"].split("::")[-1], c["kind"], c["passed"]) for c in checks] == [
         ("test_confirms_the_bug_is_caught", "fixture", False),
         ("test_relies_on_a_wrong_gradient", "fixture", False)]
+
+
+def test_the_fixture_names_the_nearest_option_for_a_misspelt_one(pytester):
+    pytester.makepyfile(test_typo=MODULE.split("good_loss = ")[0] + textwrap.dedent("""
+        def test_typo(gradient_audit):
+            gradient_audit.compare(loss, P, right, seeed=3)
+    """))
+    result = pytester.runpytest("-p", "no:cacheprovider")
+    result.assert_outcomes(failed=1)
+    result.stdout.fnmatch_lines(["*gradient_audit: unknown option 'seeed'; did you mean 'seed'?*"])
