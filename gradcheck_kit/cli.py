@@ -588,6 +588,11 @@ def _figure_suffixes() -> set:
 
 def _check_outputs(args) -> None:
     """Refuse, before any import or evaluation, outputs that could not be written."""
+    for option, path in (("--json", args.json), ("--plot", getattr(args, "plot", None))):
+        if path and path.endswith(("/", os.sep)) and not Path(path).is_dir():
+            raise UsageError(f"{option}: {path} names a folder (it ends with a slash), and "
+                             f"there is no such folder; give a file path, such as "
+                             f"{path}report{'.json' if option == '--json' else '.png'}")
     if args.json is not None:     # --json '' (an unset variable) is refused, not skipped
         check_writable(args.json, "--json")
     if getattr(args, "plot", None):

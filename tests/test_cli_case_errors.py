@@ -170,3 +170,13 @@ def test_a_bare_name_of_an_array_parameter_checks_every_entry(tmp_path, capsys):
     assert code == 0, err
     rows = json.loads(report.read_text())["checks"][0]["report"]["rows"]
     assert sorted(r["name"] for r in rows) == ["b", "w[0]", "w[1]", "w[2]"]
+
+
+def test_a_json_path_ending_in_a_slash_for_a_missing_folder_is_refused(tmp_path, capsys):
+    missing = f"{tmp_path / 'no_such_folder'}/"
+    code, out, err = run(capsys, write(tmp_path, FACTOR), "--json", missing)
+    assert code == 2 and out == ""
+    assert err == (f"gradcheck-kit: error: --json: {missing} names a folder (it ends with a "
+                   f"slash), and there is no such folder; give a file path, such as "
+                   f"{missing}report.json\n")
+    assert not (tmp_path / "no_such_folder").exists()
