@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import CheckInputError
-from .tree import Layout, assemble, flatten_like, leaves_of, rebuild
+from .errors import CheckInputError, CheckTypeError
+from .tree import Layout, _outline, assemble, flatten_like, leaves_of, rebuild
 
 
 def traced_rebuild(v, layout: Layout, batched: bool = False):
@@ -58,6 +58,15 @@ def precision_of(value) -> float:
     return eps
 
 
+def _expected_structure(layout: Layout) -> str:
+    """What a gradient must look like, in words: 'an array of shape (3,)', 'a dict with
+    keys [...] (leaves [...])'."""
+    if layout.skeleton[0] == "leaf":
+        shape = layout.leaves[0].shape
+        return f"an array of shape {shape}" if shape else "a number"
+    return _outline(layout.skeleton, [leaf.name for leaf in layout.leaves])
+
+
 def analytic_values(cost, base: np.ndarray, layout: Layout, gradient, vectorized=False):
     """(the analytic gradient flattened like params, the precision of its values)."""
     params = rebuild(base.copy(), layout)
@@ -74,6 +83,10 @@ def analytic_values(cost, base: np.ndarray, layout: Layout, gradient, vectorized
         except Exception as exc:
             raise CheckInputError(
                 f"gradient function raised {type(exc).__name__} at the base point: {exc}") from exc
+        if value is None:
+            raise CheckTypeError(
+                "the gradient function returned None (a missing return statement?); expected "
+                f"{_expected_structure(layout)}, like params")
     else:
         value = gradient
     if isinstance(value, (np.ndarray, float)) and np.size(value) == 1 and layout.size == 1:

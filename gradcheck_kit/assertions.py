@@ -1,8 +1,33 @@
 """Front end for unit tests: assert that a gradient matches, or raise with the report."""
 from __future__ import annotations
 
-from .errors import GradientMismatchError
+import difflib
+import inspect
+
+from .errors import CheckTypeError, GradientMismatchError
 from .pipeline import compare_gradient
+
+
+def check_option_names(options: dict, where: str) -> None:
+    """Refuse an option compare_gradient does not take, naming the nearest one.
+
+    Examples
+    --------
+    >>> try:
+    ...     check_option_names({"methd": "central"}, "assert_gradient_matches")
+    ... except TypeError as exc:
+    ...     print(exc)
+    assert_gradient_matches: unknown option 'methd'; did you mean 'method'?
+    """
+    __tracebackhide__ = True
+    known = [n for n, p in inspect.signature(compare_gradient).parameters.items()
+             if p.kind == p.KEYWORD_ONLY]
+    for name in options:
+        if name not in known:
+            near = difflib.get_close_matches(name, known, n=1)
+            hint = (f"; did you mean {near[0]!r}?" if near
+                    else f"; expected one of {', '.join(known)}")
+            raise CheckTypeError(f"{where}: unknown option {name!r}{hint}")
 
 
 def assert_gradient_matches(cost, params, gradient=None, **options):
@@ -31,7 +56,8 @@ def assert_gradient_matches(cost, params, gradient=None, **options):
         show the diagnosis as the failure) and whose ``.report`` is the data.  The
         pytest plugin also lists it under "gradient checks that failed".
     CheckInputError
-        The check cannot run (bad params, gradient or options).
+        The check cannot run (bad params, gradient or options; an unknown option is
+        named, with the nearest known one).
 
     Examples
     --------
@@ -40,6 +66,7 @@ def assert_gradient_matches(cost, params, gradient=None, **options):
     True
     """
     __tracebackhide__ = True   # pytest: show the caller's line and the report, not this frame
+    check_option_names(options, "assert_gradient_matches")
     report = compare_gradient(cost, params, gradient, **options)
     if not report.passed:
         raise GradientMismatchError(report)

@@ -23,6 +23,7 @@ whose J v, u^T J or H v product is checked (`compare_jvp`, `compare_vjp`,
 """
 from __future__ import annotations
 
+import difflib
 import inspect
 import numbers
 import sys
@@ -460,8 +461,11 @@ def check_options(options: dict, where: str = "case") -> None:
     known = case_options()
     unknown = [k for k in options if k not in known]
     if unknown:
-        extra = "examples, name, expect_mismatch or " if where == "case" else ""
-        raise CheckInputError(f"{where}: unknown option {unknown[0]!r}; expected {extra}one of "
+        extra = ["examples", "name", "expect_mismatch"] if where == "case" else []
+        near = difflib.get_close_matches(unknown[0], known + extra, n=1)
+        hint = (f"did you mean {near[0]!r}? Expected " if near else "expected ")
+        raise CheckInputError(f"{where}: unknown option {unknown[0]!r}; {hint}"
+                              f"{', '.join(extra) + ' or ' if extra else ''}one of "
                               f"{', '.join(known)}")
     try:
         plan.check_method(options.get("method", "auto"))

@@ -5,10 +5,15 @@ Exit status:
 
     0    every check as expected (a declared planted bug counts when it is found)
     1    a check found a mismatch, or missed a declared planted bug
-    2    a usage error or bad input: one line on stderr, no traceback
+    2    a usage error or bad input: one line on stderr, no traceback; also a case
+         that could not run (its params or gradient refused, its cost raising at the
+         base point) when no other case found a mismatch
     130  interrupted (Ctrl-C): the partial report is printed and, with --json, written
     141  the output closed (`| head -1`) before every case ran, and none of those
          that ran failed (the status a shell gives a program ended by SIGPIPE)
+
+When several apply, the first of 130, 1, 2, 141 wins: a case that could not run does
+not stop the others, and a mismatch found in one of them still exits 1.
 
 JSON written by --json, one shape whatever the number of cases:
 
@@ -20,8 +25,10 @@ JSON written by --json, one shape whatever the number of cases:
     stopped         null, "interrupted" or "output closed"
     passed          complete, and every check as expected
     checks          [{case, passed, as_expected, expect_mismatch, planted_bug, interrupted,
-                      report}]: planted_bug is null for an ordinary case, else "found" or
-                      "not found"; report is a gradient report (schema in report.py)
+                      could_not_run, report}]: planted_bug is null for an ordinary case, else
+                      "found" or "not found"; could_not_run is null, or for a case that could
+                      not run the message saying why (its report is then null); report is a
+                      gradient report (schema in report.py)
     not_run         names of the cases that never ran (after an interrupt or a closed output)
 """
 from __future__ import annotations
@@ -43,12 +50,14 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .cases import Case, CaseResult, check_case, declared_cases, is_strategy
+from .cases import (Case, CaseResult, check_case, declared_cases, is_params_function,
+                    is_strategy)
 from .errors import CheckInputError, CheckInterrupted, LongCheckWarning
 from .frameworks import load_torch_params
 from .files import (ParamsFileError, UnwritablePathError, check_writable, load_params,
                     resolve_target, write_atomically)
-from .plan import METHOD_CHOICES
+from .plan import METHOD_CHOICES, choose_coordinates
+from .tree import flatten
 
 EXIT_OK, EXIT_MISMATCH, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_OUTPUT_CLOSED = 0, 1, 2, 130, 141
 LOADED_PREFIX = "gradcheck_target_"   # module names given to files loaded by path
@@ -67,9 +76,10 @@ checked as declared when neither --gradient nor --params is given.  A
 stochastic case keeps a seed it declares over --seed.
 
 Exit status: 0 all checks as expected, 1 a mismatch, 2 a usage error or bad
-input, 130 interrupted, 141 the output closed before every case ran.  A case
-declared with expect_mismatch=True (a planted bug) is as expected when its
-mismatch is found.
+input (also a case that could not run, when no case found a mismatch; the
+other cases still run), 130 interrupted, 141 the output closed before every
+case ran.  A case declared with expect_mismatch=True (a planted bug) is as
+expected when its mismatch is found.
 
 Checking a module imports it, which runs its code: only check code you trust.
 """
@@ -126,7 +136,8 @@ def coordinates_option(values):
 
     One integer K checks K coordinates per parameter.  Otherwise every value names a
     coordinate as the report prints it: ``W[0, 1]`` (an index), ``W[5]`` (the flat
-    position within W), ``bias`` (a scalar parameter).
+    position within W), ``bias`` (a whole parameter: a scalar, or every entry of an
+    array, see `case_coordinates`).
 
     Parameters
     ----------
@@ -176,6 +187,49 @@ def coordinates_option(values):
             item = parts[0] if len(parts) == 1 else parts
         chosen.setdefault(match.group("name"), []).append(item)
     return chosen
+
+
+def case_coordinates(chosen, params):
+    """The --coordinates names for one case's params: a bare name of an array parameter
+    (``()``) stands for every entry of it; the names and indices are checked here.
+
+    Parameters
+    ----------
+    chosen : dict
+        From `coordinates_option`.
+    params : structure
+        The case's params.
+
+    Returns
+    -------
+    dict or None
+        compare_gradient's ``coordinates``; None when params cannot be flattened
+        (the check itself then says why).
+
+    Raises
+    ------
+    CheckInputError
+        A name that is not a parameter of `params`, or an index out of range.
+
+    Examples
+    --------
+    >>> case_coordinates({"b": [()], "W": [(0, 1)]},
+    ...                  {"W": np.zeros((2, 2)), "b": np.zeros(3)})
+    {'b': [0, 1, 2], 'W': [(0, 1)]}
+    """
+    try:
+        _, layout = flatten(params)
+    except CheckInputError:
+        return None
+    leaves = {leaf.name: leaf for leaf in layout.leaves}
+    out = {}
+    for name, items in chosen.items():
+        leaf = leaves.get(name)
+        if leaf is not None and leaf.shape != () and () in items:
+            items = [i for i in items if i != ()] + list(range(leaf.size))
+        out[name] = items
+    choose_coordinates(layout, out, None, np.zeros(layout.size))   # raises for a bad name
+    return out
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -534,6 +588,11 @@ def _figure_suffixes() -> set:
 
 def _check_outputs(args) -> None:
     """Refuse, before any import or evaluation, outputs that could not be written."""
+    for option, path in (("--json", args.json), ("--plot", getattr(args, "plot", None))):
+        if path and path.endswith(("/", os.sep)) and not Path(path).is_dir():
+            raise UsageError(f"{option}: {path} names a folder (it ends with a slash), and "
+                             f"there is no such folder; give a file path, such as "
+                             f"{path}report{'.json' if option == '--json' else '.png'}")
     if args.json is not None:     # --json '' (an unset variable) is refused, not skipped
         check_writable(args.json, "--json")
     if getattr(args, "plot", None):
@@ -625,27 +684,41 @@ def _guarded_stdout():
 @dataclass
 class _Outcome:
     """One case as it ended: its report, the text printed for it, and the case's result
-    (None for a check cut short by Ctrl-C, which has only its partial report)."""
+    (None for a check cut short by Ctrl-C, which has only its partial report).  A case
+    that could not run has no report, and `error` says why."""
     label: str
     case: Case
     report: object
     text: str
     result: CaseResult | None = None
+    error: str | None = None
+
+    @classmethod
+    def could_not_run(cls, label: str, case: Case, message: str) -> "_Outcome":
+        return cls(label, case, None, f"COULD NOT RUN: {message}", error=message)
+
+    @property
+    def interrupted(self) -> bool:
+        return self.report is not None and self.report.interrupted
 
     @property
     def passed(self) -> bool:
+        if self.error is not None:
+            return False
         return self.result.passed if self.result is not None else self.report.passed
 
     @property
     def found(self) -> bool:
         """A mismatch (or another failure) was seen, even if the check was cut short."""
+        if self.error is not None:
+            return False
         if self.report.interrupted:
             return bool(self.report.mismatches)
         return not self.passed
 
     @property
     def as_expected(self) -> bool:
-        if self.report.interrupted:
+        if self.error is not None or self.report.interrupted:
             return False
         if self.result is not None:
             return self.result.as_expected
@@ -657,6 +730,8 @@ class _Outcome:
         return "found" if self.found else "not found"
 
     def quiet_line(self) -> str:
+        if self.error is not None:
+            return f"COULD NOT RUN: {self.error.splitlines()[0]}  [{self.label}]"
         line = self.report.to_text().splitlines()[0]
         planted = self.planted_bug()
         mark = "" if planted is None else (
@@ -667,8 +742,9 @@ class _Outcome:
     def to_dict(self) -> dict:
         return {"case": self.label, "passed": self.passed,
                 "as_expected": self.as_expected, "expect_mismatch": self.case.expect_mismatch,
-                "planted_bug": self.planted_bug(), "interrupted": self.report.interrupted,
-                "report": self.report.to_dict()}
+                "planted_bug": self.planted_bug(), "interrupted": self.interrupted,
+                "could_not_run": self.error,
+                "report": None if self.report is None else self.report.to_dict()}
 
 
 @dataclass
@@ -720,11 +796,19 @@ class _Run:
     def complete(self) -> bool:
         return self.stopped != "interrupted" and not self.not_run
 
+    @property
+    def could_not_run(self) -> list:
+        return [o for o in self.outcomes if o.error is not None]
+
     def exit_code(self) -> int:
+        """The worst outcome, in this order: interrupted, a mismatch (or a planted bug
+        missed), a case that could not run, the output closed, all as expected."""
         if self.stopped == "interrupted":
             return EXIT_INTERRUPTED
-        if any(not o.as_expected for o in self.outcomes):
+        if any(not o.as_expected for o in self.outcomes if o.error is None):
             return EXIT_MISMATCH
+        if self.could_not_run:
+            return EXIT_USAGE
         if self.not_run:
             return EXIT_OUTPUT_CLOSED
         return EXIT_OK
@@ -765,9 +849,49 @@ def _locate_one(args, label: str, c: Case, executor) -> _Outcome:
     return _Outcome(label, c, report, result.to_text(), result)
 
 
+def _known_params(args, c):
+    """The params of a gradient case, when known without drawing from a strategy."""
+    if c.kind != "gradient" or is_strategy(c.params):
+        return None
+    if is_params_function(c.params):
+        seed = args.seed if args.seed is not None else c.options.get("seed")
+        try:
+            return c.params(np.random.default_rng(seed))
+        except Exception:  # noqa: BLE001 - the check itself says what the function raised
+            return None
+    return c.params
+
+
+def _coordinates_by_case(args, cases: list) -> dict:
+    """label -> the --coordinates of that case, checked against every case before any
+    runs: a name some case lacks stops the command with one line naming those cases."""
+    chosen = args.chosen_coordinates
+    if not isinstance(chosen, dict):
+        return {label: chosen for label, _ in cases}
+    by_case, lacking, named = {}, [], ", ".join(map(repr, chosen))
+    for label, c in cases:
+        params = _known_params(args, c)
+        if params is None:
+            by_case[label] = chosen
+            continue
+        try:
+            by_case[label] = case_coordinates(chosen, params) or chosen
+        except CheckInputError as exc:
+            text = str(exc).removeprefix("coordinates: ").removeprefix("coordinates ")
+            lacking.append((label, text))
+    if lacking:
+        where = "; ".join(f"case {label}: {text}" for label, text in lacking) \
+            if len(cases) > 1 else lacking[0][1]
+        hint = (" (name one case as TARGET:COST to check coordinates of its own)"
+                if len(cases) > 1 else "")
+        raise UsageError(f"--coordinates {named}: {where}{hint}; nothing was checked")
+    return by_case
+
+
 def _check_one(args, label: str, c: Case, executor) -> _Outcome:
     overrides = {"method": args.method, "seed": args.seed, "rtol": args.rtol, "atol": args.atol,
-                 "coordinates": args.chosen_coordinates, "executor": executor,
+                 "coordinates": args.coordinates_by_case.get(label, args.chosen_coordinates),
+                 "executor": executor,
                  "progress": False if args.no_progress else None,
                  "with_rng": True if getattr(args, "with_rng", False) else None}
     try:
@@ -790,6 +914,8 @@ def _run_cases(args, run: _Run, importer: _Importer) -> None:
         run.doing = f"importing {_split_target(args.target)[0]}"
         cases = _collect_cases(args, importer)
         run.labels = [label for label, _ in cases]
+        args.coordinates_by_case = _coordinates_by_case(args, cases) \
+            if args.command == "check" else {}
         executor, owner = _make_executor(args)
         if args.scheduler is not None:
             _ship_modules_by_value(importer.loaded)
@@ -799,9 +925,10 @@ def _run_cases(args, run: _Run, importer: _Importer) -> None:
             run.doing = f"checking {label}"
             try:
                 outcome = one(args, label, c, executor)
-            except CheckInputError as exc:
-                raise CheckInputError(f"case {label}: {exc}" if len(cases) > 1 else str(exc)) \
-                    from exc
+            except (CheckInputError, UsageError) as exc:
+                # this case cannot run: say so, and go on with the others
+                _say(f"error: case {label}: {exc}" if len(cases) > 1 else f"error: {exc}")
+                outcome = _Outcome.could_not_run(label, c, str(exc))
             current = None
             run.show(outcome)
     except KeyboardInterrupt as exc:
@@ -828,6 +955,8 @@ def _write_outputs(args, run: _Run) -> None:
     if getattr(args, "plot", None) and run.stopped != "interrupted":
         many = len(run.labels) > 1
         for o in run.outcomes:
+            if o.report is None:      # the case could not run: nothing to draw
+                continue
             run.doing = f"drawing the figure of {o.label}"
             path = _figure_path(args.plot, o.label, many)
             resolve_target(path, "--plot")

@@ -19,7 +19,8 @@
 - A case declared with expect_mismatch=True (a planted bug) is an expected
   failure: xfail when the check fails, a failure when it passes.
 - A terminal section "gradient checks that failed" lists the failed checks of
-  cases, of the fixture, and of `gk.assert_gradient_matches` calls that failed a
+  cases, of the fixture in a test that failed (a passing test may confirm that
+  a bug is caught), and of `gk.assert_gradient_matches` calls that failed a
   test, with their worst coordinates and hints.  Under pytest-xdist the workers
   send their checks to the controller, which prints the section and writes the
   session report.  Only the printed lines (and, when a session report is asked
@@ -87,10 +88,13 @@ class _Session:
         self.report_path = report_path    # absolute path, or None
         self.records = []                 # [{"summary": [lines], "entry": dict | None}]
 
-    def add(self, summary: list, entry) -> None:
-        """Keep the summary lines, and the JSON entry (`entry()`) when a report is asked for."""
-        self.records.append({"summary": summary,
-                             "entry": entry() if self.report_path is not None else None})
+    def add(self, summary: list, entry) -> dict:
+        """Keep the summary lines, and the JSON entry (`entry()`) when a report is asked for;
+        returns the record (the fixture fills in its summary once its test has failed)."""
+        record = {"summary": summary,
+                  "entry": entry() if self.report_path is not None else None}
+        self.records.append(record)
+        return record
 
 
 _SESSION = pytest.StashKey[_Session]()
@@ -394,6 +398,7 @@ class GradientAudit:
     def __init__(self, request):
         self._request = request
         self.reports = []    # this test's reports (freed with the test)
+        self.unlisted = []   # (record, summary lines) of failed checks, listed if the test fails
 
     def _options(self, options):
         node = self._request.node
@@ -402,10 +407,19 @@ class GradientAudit:
     def compare(self, cost, params, gradient=None, **options):
         """compare_gradient with the session's options; the check is recorded."""
         __tracebackhide__ = True
+        from .assertions import check_option_names
         from .pipeline import compare_gradient
+        check_option_names(options, "gradient_audit")
         report = compare_gradient(cost, params, gradient, **self._options(options))
         self.reports.append(report)
-        _record_report(self._request.config, self._request.node.nodeid, "fixture", report)
+        # A failed check is listed under "gradient checks that failed" only when its test
+        # fails: a test may confirm that a planted bug is caught (assert not report.passed).
+        node = self._request.node.nodeid
+        record = _session(self._request.config).add(
+            [], lambda: _entry(node, "fixture", passed=report.passed, report=report,
+                               text=report.to_text()))
+        if not report.passed:
+            self.unlisted.append((record, _report_lines(node, report)))
         return report
 
     def assert_matches(self, cost, params, gradient=None, **options):
@@ -426,12 +440,16 @@ def gradient_audit(request):
 @pytest.hookimpl(hookwrapper=True)
 def pytest_runtest_makereport(item, call):
     outcome = yield
-    error = call.excinfo.value if call.excinfo is not None else None
-    if not isinstance(error, GradientMismatchError) or _SESSION not in item.config.stash:
-        return
-    if not outcome.get_result().failed:    # caught by xfail: not a failure to list
-        return
+    if _SESSION not in item.config.stash or not outcome.get_result().failed:
+        return                             # passed, or caught by xfail: nothing to list
     audit = (getattr(item, "funcargs", None) or {}).get("gradient_audit")
+    if audit is not None:                  # the fixture's failed checks, now that it failed
+        for record, lines in audit.unlisted:
+            record["summary"] = lines
+        audit.unlisted.clear()
+    error = call.excinfo.value if call.excinfo is not None else None
+    if not isinstance(error, GradientMismatchError):
+        return
     if audit is not None and any(r is error.report for r in audit.reports):
         return                             # the fixture recorded it already
     _record_report(item.config, item.nodeid, "assertion", error.report)

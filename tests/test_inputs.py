@@ -113,3 +113,34 @@ def test_a_cost_failing_near_the_base_point_gives_error_rows_not_a_crash():
 def test_gradient_dict_in_another_key_order_is_matched_by_key():
     report = gk.compare_gradient(quad, PARAMS, lambda p: {"b": 2 * p["b"], "W": 2 * p["W"]})
     assert report.passed and {r.parameter for r in report.rows} == {"W", "b"}
+
+
+def forgot_to_return(p):
+    {"W": 2 * p["W"], "b": 2 * p["b"]}    # no return statement
+
+
+@pytest.mark.parametrize("params, expected", [
+    (PARAMS, "expected a dict with keys ['W', 'b'] (leaves ['W', 'b']), like params"),
+    (np.ones(3), "expected an array of shape (3,), like params"),
+    (1.5, "expected a number, like params")])
+def test_a_gradient_function_returning_none_says_so(params, expected):
+    cost = quad if isinstance(params, dict) else (lambda x: float(np.sum(x ** 2)))
+    gradient = forgot_to_return if isinstance(params, dict) else (lambda x: None)
+    text, error = message(cost=cost, params=params, gradient=gradient)
+    assert isinstance(error, gk.CheckTypeError)
+    assert text == ("the gradient function returned None (a missing return statement?); "
+                    + expected)
+
+
+def test_a_misspelt_option_names_the_nearest_one_like_a_case_does():
+    text, error = message(call=gk.assert_gradient_matches, cost=quad, params=PARAMS,
+                          gradient=quad_grad, methd="central")
+    assert isinstance(error, TypeError)
+    assert text == "assert_gradient_matches: unknown option 'methd'; did you mean 'method'?"
+    with pytest.raises(CheckInputError, match="case: unknown option 'methd'; did you mean "
+                                              "'method'\\? Expected examples, name"):
+        gk.case(quad_grad, params=PARAMS, methd="central")
+    text, _ = message(call=gk.assert_gradient_matches, cost=quad, params=PARAMS,
+                      gradient=quad_grad, qqqq=1)
+    assert text.startswith("assert_gradient_matches: unknown option 'qqqq'; expected one of "
+                           "method, step, rtol, atol")

@@ -197,3 +197,36 @@ def test_library_use_imports_neither_pytest_nor_hypothesis():
             "bad = [m for m in ('pytest', 'hypothesis') if m in sys.modules]\n"
             "assert not bad, bad\n")
     subprocess.run([sys.executable, "-c", code], check=True)
+
+
+FIXTURE_CANARY = MODULE.split("good_loss = ")[0] + textwrap.dedent("""
+    def test_confirms_the_bug_is_caught(gradient_audit):
+        assert not gradient_audit.compare(loss, P, wrong).passed
+
+    def test_relies_on_a_wrong_gradient(gradient_audit):
+        assert gradient_audit.compare(loss, P, wrong).passed
+""")
+
+
+def test_the_fixture_lists_a_failed_check_only_when_its_test_fails(pytester):
+    pytester.makepyfile(test_canary=FIXTURE_CANARY)
+    result = pytester.runpytest("-p", "no:cacheprovider", "--gradient-report", "s.json")
+    result.assert_outcomes(passed=1, failed=1)
+    summary = result.stdout.str().split("gradient checks that failed", 1)[1]
+    summary = summary.split("short test summary")[0]
+    assert "test_canary.py::test_relies_on_a_wrong_gradient: b[2] (disagree" in summary
+    assert "test_confirms_the_bug_is_caught" not in summary
+    checks = json.loads((pytester.path / "s.json").read_text())["checks"]   # both kept
+    assert [(c["id"].split("::")[-1], c["kind"], c["passed"]) for c in checks] == [
+        ("test_confirms_the_bug_is_caught", "fixture", False),
+        ("test_relies_on_a_wrong_gradient", "fixture", False)]
+
+
+def test_the_fixture_names_the_nearest_option_for_a_misspelt_one(pytester):
+    pytester.makepyfile(test_typo=MODULE.split("good_loss = ")[0] + textwrap.dedent("""
+        def test_typo(gradient_audit):
+            gradient_audit.compare(loss, P, right, seeed=3)
+    """))
+    result = pytester.runpytest("-p", "no:cacheprovider")
+    result.assert_outcomes(failed=1)
+    result.stdout.fnmatch_lines(["*gradient_audit: unknown option 'seeed'; did you mean 'seed'?*"])
