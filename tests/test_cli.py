@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from gradcheck_kit.cli import main
+from cli_runs import run_check as run
 
 GOOD = textwrap.dedent("""
     import numpy as np
@@ -52,13 +53,6 @@ def files(tmp_path):
     np.save(tmp_path / "pickled.npy", np.array([{"W": 1}], dtype=object), allow_pickle=True)
     (tmp_path / "p.txt").write_text("1 2 3")
     return tmp_path
-
-
-def run(capsys, *args):
-    code = main(["check", *map(str, args)])
-    out = capsys.readouterr()
-    assert "Traceback" not in out.err + out.out
-    return code, out.out, out.err
 
 
 def test_right_module_exits_0(files, capsys):

@@ -7,7 +7,7 @@ import textwrap
 import numpy as np
 import pytest
 
-from gradcheck_kit.cli import main
+from cli_runs import run_check as run
 
 # A least-squares fit (common practice, no source) declared four times: right, with a
 # wrong factor in b, with a gradient of the wrong shape for W, and right again.
@@ -52,13 +52,6 @@ def write(tmp_path, extra=""):
     path = tmp_path / "fits.py"
     path.write_text(MODULE.replace("{extra}", extra))
     return path
-
-
-def run(capsys, *args):
-    code = main(["check", *map(str, args)])
-    out = capsys.readouterr()
-    assert "Traceback" not in out.err + out.out
-    return code, out.out, out.err
 
 
 def test_a_case_that_cannot_run_does_not_stop_the_others(tmp_path, capsys):

@@ -11,6 +11,7 @@ import pytest
 
 import gradcheck_kit as gk
 from gradcheck_kit.cli import coordinates_option, main
+from cli_runs import run_cli as run
 
 # A line fit's mean squared error and its gradient (common practice, no source).
 LINE_FIT = textwrap.dedent("""
@@ -87,13 +88,6 @@ def folder(tmp_path, monkeypatch):
     np.savez(tmp_path / "fit.npz", w=np.array([1.5]), b=np.array(0.5))
     monkeypatch.chdir(tmp_path)
     return tmp_path
-
-
-def run(capsys, *args):
-    code = main([*map(str, args)])
-    out = capsys.readouterr()
-    assert "Traceback" not in out.err + out.out
-    return code, out.out, out.err
 
 
 def one_error(capsys, *args):

@@ -11,7 +11,7 @@ import warnings
 
 import pytest
 
-from gradcheck_kit.cli import main
+from cli_runs import run_check as run
 
 posix_only = pytest.mark.skipif(sys.platform == "win32", reason="signals and pipes")
 WAIT = 120    # seconds: only a guard against a hang, never a measurement
@@ -37,13 +37,6 @@ def module(folder, name, bug=2, print_line="pass"):
     (folder / name).write_text(TWO_CASES.replace("{BUG}", str(bug))
                                .replace("{PRINT}", print_line))
     return folder / name
-
-
-def run(capsys, *args):
-    code = main(["check", *map(str, args)])
-    out = capsys.readouterr()
-    assert "Traceback" not in out.err + out.out
-    return code, out.out, out.err
 
 
 def last_line(err):

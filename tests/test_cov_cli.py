@@ -10,6 +10,7 @@ import pytest
 
 import gradcheck_kit as gk
 from gradcheck_kit.cli import main
+from cli_runs import run_cli as run
 
 QUADRATIC = textwrap.dedent("""
     import numpy as np
@@ -24,13 +25,6 @@ QUADRATIC = textwrap.dedent("""
     def grad(p):
         return {"W": 2 * p["W"], "b": np.cos(p["b"])}
 """)
-
-
-def run(capsys, *args):
-    code = main([*map(str, args)])
-    out = capsys.readouterr()
-    assert "Traceback" not in out.err + out.out
-    return code, out.out, out.err
 
 
 @pytest.fixture
