@@ -210,9 +210,16 @@ def walk_down(setup: Setup, numeric: Numeric, rows: np.ndarray) -> tuple:
         out.h[todo[pick]] = h[todo[pick]]
         out.values[todo[pick]] = again.values[pick]
         last.estimates.put(todo[ok], new.take(np.flatnonzero(ok)))
-        converged[todo[agree]] = True
+        # Two values that agree at steps still long for the length the cost varies on
+        # (|f1| / |f2| at the shorter step) prove nothing: a parameter of natural size 1e-8
+        # stepped by 1e-4 and 1e-5 sees only a quadratic coupling term, the same at both,
+        # while the term that varies on 1e-8 is about even over either step.
+        with np.errstate(all="ignore"):
+            long_now = h[todo] > LENGTH_TIMES * np.abs(new.derivative) / new.curvature
+        converged[todo[agree & ~long_now]] = True
         # Settled rows go on while step error, not rounding, dominates: it shrinks fast.
-        go_on = ok & ((~agree & ~was) | (take & agree & (new.rounding < new.truncation)))
+        go_on = ok & ((~agree & ~was) | (agree & long_now & (new.rounding < new.error / 2)) |
+                      (take & agree & (new.rounding < new.truncation)))
         todo = todo[go_on]
     return out, converged
 
@@ -389,16 +396,23 @@ def one_pass(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray) -> Nu
     done = ~np.isnan(values).any(axis=1) | failed
     if not results.interrupted:
         done[:] = True
+    est = _estimates(setup, method, coords, h, values)
+    return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
+
+
+def _estimates(setup: Setup, method: str, coords, h, values) -> stencils.Estimates:
+    """The stencils' estimates from the values of one stencil per coordinate."""
     s = setup.scale[coords]
     with np.errstate(all="ignore"):
         # One-sided stencils see no curvature of their own: the largest any line saw.
         bend = setup.line.largest_curvature_s2 if method in ("forward", "backward") \
             else setup.line.curvature_s2
+        # The terms round at the dtype's epsilon unless the cost is noisy beyond it.
+        terms = setup.eps_f if setup.noisy else float(np.finfo(setup.runner.output_dtype).eps)
         near = stencils.Near(setup.f0, setup.eps_f, setup.line.noise, bend / s ** 2,
                              8 * setup.line.third / s ** 3,
-                             np.abs(np.nan_to_num(setup.base[coords])))
-        est = stencils.combine(method, values, h, s, near)
-    return Numeric(coords, np.array(h, dtype=float), values, est, failed, details, done, method)
+                             np.abs(np.nan_to_num(setup.base[coords])), terms)
+        return stencils.combine(method, values, h, s, near)
 
 
 def _run_stencils(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray):
@@ -440,41 +454,120 @@ def term_sizes(setup: Setup, numeric: Numeric, third: bool = False) -> np.ndarra
     return stencils.term_scale(est.derivative, setup.f0, s, seen, largest_cap=cap)
 
 
-# measured_extrapolation: the step error of Richardson's value R(h) = (4 C(h/2) - C(h)) / 3
-# measured from one more central difference, C(2h), instead of bounded by its gap to
-# C(h/2).  With C(t) = f1 + a t^2 + b t^4, R(2h) - R(h) = 15 R(h)'s error (the next column
+# measured_extrapolation: the step error of Richardson's value R(H) = (4 C(H/2) - C(H)) / 3
+# measured from one more central difference, C(2H), instead of bounded by its gap to
+# C(H/2).  With C(t) = f1 + a t^2 + b t^4, R(2H) - R(H) = 15 R(H)'s error (the next column
 # of the extrapolation tableau).  Trusted only where the differences show that expansion:
-# C(2h) - C(h) is 4 times C(h) - C(h/2) (within RATIO_SLACK) and the latter is
+# C(2H) - C(H) is 4 times C(H) - C(H/2) (within RATIO_SLACK) and the latter is
 # RESOLVED_ABOVE times its rounding, or all three are equal within their rounding.  Then
 # the error is MEASURED_SAFETY times the measured one plus its own rounding, never above
 # the gap.
 RATIO_SLACK = 0.25
 RESOLVED_ABOVE = 8.0
 MEASURED_SAFETY = 2.0
+# A row whose value is still mostly rounding climbs: one more central difference at twice
+# the longest step (two evaluations), and the triple one step up is measured, up to
+# LONGEST_CLIMB times (C at 32 times the default step).  The default steps are sized for
+# the dtype's epsilon relative to |f|; a float32 cost near 0 summed from terms of size 1
+# (a distillation loss near its optimum) rounds 1e3 times more than that, and there its
+# rounding, not its curvature, limits the value: the best step was 16 times longer.
+LONGEST_CLIMB = 5
 
 
-def measured_extrapolation(setup: Setup, coords: np.ndarray, h: np.ndarray) -> tuple:
-    """Richardson values at `coords` (steps h aligned with them) whose truncation error is
-    measured where the cost follows the expansion: (Numeric, measured) with measured the
-    rows where it was."""
-    rich = one_pass(setup, "richardson", coords, h)
-    wide = one_pass(setup, "central", coords, 2 * h)
-    est, f = rich.estimates, rich.values.real
+def _triple_test(near, far, unit) -> tuple:
+    """(measured, resolved, steady) of three central differences C(H/2), C(H), C(2H):
+    near = C(H) - C(H/2), far = C(2H) - C(H), unit = the noise of one value over H."""
     with np.errstate(all="ignore"):
-        c1 = (f[:, 0] - f[:, 1]) / (2 * h)
-        c_half = (f[:, 2] - f[:, 3]) / h
-        c2 = wide.estimates.derivative
-        near, far = c1 - c_half, c2 - c1
-        # Rounding bounds: |f| noise over the steps, summed over each difference's values.
-        unit = est.noise / h
-        ratio = far / near
-        # ... or all three differences equal within their rounding (a quadratic along
-        # this coordinate): no step error shows at any of the three steps.
         steady = (np.abs(near) <= 2 * 3 * unit) & (np.abs(far) <= 2 * 1.5 * unit)
-        measured = (((np.abs(near) > RESOLVED_ABOVE * 3 * unit) &
-                     (np.abs(ratio - 4) < 4 * RATIO_SLACK)) | steady) & \
-            ~rich.failed & ~wide.failed & np.isfinite(c2)
-        error = MEASURED_SAFETY * (np.abs((4 * c1 - c2) / 3 - est.derivative) / 15 + 0.3 * unit)
-    out = rich.copy()
-    out.estimates.truncation = np.where(measured, np.minimum(error, est.gap), est.truncation)
+        resolved = np.abs(near) > RESOLVED_ABOVE * 3 * unit
+        follows = resolved & (np.abs(far / near - 4) < 4 * RATIO_SLACK)
+    return follows | steady, resolved, steady
+
+
+def measured_extrapolation(setup: Setup, coords: np.ndarray, h: np.ndarray,
+                           reference: stencils.Estimates) -> tuple:
+    """Richardson values at `coords` (steps h aligned with them) whose truncation error is
+    measured where the cost follows the expansion, at the step of smallest error on a
+    ladder h, 2h, 4h, ... climbed while rounding dominates: (Numeric, measured) with
+    measured the rows where it was.  A value is taken only within the error bounds of
+    the best one so far, starting from `reference` (the rows' first estimates): three
+    differences can look steady across a pole the first steps stayed clear of (gammaln
+    at 3e-6, about even there)."""
+    out = one_pass(setup, "richardson", coords, h)
+    best = reference.take(np.arange(len(coords)))
+    f = out.values.real.copy()      # out's values change as rungs are taken
+    n = len(coords)
+    measured = np.zeros(n, dtype=bool)
+    climbing = ~out.failed & np.isfinite(out.estimates.derivative)
+    # Central differences and their points' values per rung: rung k has step h 2^(k-2).
+    # The lowest, C(h/4), checks the expansion once more below each triple: steps of 4
+    # on float32 logits of 1000, whose softmax varies on a length of 1, gave three
+    # differences in a ratio of 4 by chance.
+    quarter = one_pass(setup, "central", coords, h / 4)
+    ends = quarter.values.real
+    plus, minus = [ends[:, 0], f[:, 2], f[:, 0]], [ends[:, 1], f[:, 3], f[:, 1]]
+    climbing &= ~quarter.failed
+    steps = [h / 4, h / 2, h]
+    for _ in range(LONGEST_CLIMB + 1):
+        rows = np.flatnonzero(climbing)
+        if rows.size == 0 or setup.runner.interrupted:
+            break
+        top = 2 * steps[-1]
+        wide = one_pass(setup, "central", coords[rows], top[rows])
+        p, m = np.full(n, np.nan), np.full(n, np.nan)
+        p[rows], m[rows] = wide.values.real[:, 0], wide.values.real[:, 1]
+        p[rows[wide.failed]] = np.nan
+        plus.append(p)
+        minus.append(m)
+        steps.append(top)
+        # The triple C(H/2), C(H), C(2H) around H = the rung below the new one.
+        H = steps[-2][rows]
+        values = np.stack([plus[-2][rows], minus[-2][rows], plus[-3][rows], minus[-3][rows]], 1)
+        rich = _richardson_from(setup, coords[rows], H, values)
+        est = rich.estimates
+        with np.errstate(all="ignore"):
+            c1 = (values[:, 0] - values[:, 1]) / (2 * H)
+            c_half = (values[:, 2] - values[:, 3]) / H
+            c2 = (p[rows] - m[rows]) / (2 * top[rows])
+            c_quarter = (plus[-4][rows] - minus[-4][rows]) / (H / 2)
+            unit = est.noise / H
+            ok, resolved, steady = _triple_test(c1 - c_half, c2 - c1, unit)
+            # The difference below, C(H/2) - C(H/4), must be a quarter of the near one
+            # (or within its rounding, for a steady row).
+            below = c_half - c_quarter
+            ok &= np.where(steady, np.abs(below) <= 2 * 6 * unit,
+                           np.abs(below - (c1 - c_half) / 4) <=
+                           RATIO_SLACK * np.abs(c1 - c_half) / 4 + 6 * unit)
+            ok &= np.isfinite(c2) & np.isfinite(est.derivative) & ~rich.failed
+            error = MEASURED_SAFETY * (np.abs((4 * c1 - c2) / 3 - est.derivative) / 15 +
+                                       0.3 * unit)
+        est.truncation = np.where(ok, np.minimum(error, est.gap), est.truncation)
+        total = est.truncation + est.rounding
+        before = best.take(rows)
+        consistent = np.abs(est.derivative - before.derivative) <= before.error + total
+        ok &= consistent
+        take = ok & (~measured[rows] | (total < before.error))
+        _adopt(out, rows[take], rich, np.flatnonzero(take))
+        best.put(rows[take], rich.estimates.take(np.flatnonzero(take)))
+        measured[rows[take]] = True
+        # Up while rounding dominates: unresolved (not yet the expansion, nor a
+        # departure from it), steady, or measured with rounding above the step error.
+        climbing[:] = False
+        # Unresolved rows climb only while the far difference could still be the
+        # expansion's (at most 4 times the near one, with slack and rounding): one that
+        # jumps (a kink between H and 2H) says the steps are long enough already.
+        with np.errstate(all="ignore"):
+            could_follow = np.abs(c2 - c1) <= 4 * (1 + RATIO_SLACK) * np.abs(c1 - c_half) + \
+                2 * 3 * unit
+        climbing[rows] = np.isfinite(c2) & consistent & (
+            (~resolved & ~ok & could_follow) | steady | (ok & (est.rounding > est.truncation)))
     return out, measured
+
+
+def _richardson_from(setup: Setup, coords, h, values) -> Numeric:
+    """A Richardson Numeric from its four values (f(x+h), f(x-h), f(x+h/2), f(x-h/2))
+    already computed: the estimates of one_pass, no evaluation."""
+    est = _estimates(setup, "richardson", coords, h, values)
+    return Numeric(coords, np.array(h, dtype=float), values, est,
+                   ~np.isfinite(values).all(axis=1), [""] * len(coords),
+                   np.ones(len(coords), dtype=bool), "richardson")

@@ -190,6 +190,11 @@ def coordinate_line(setup: "Setup", i: int):
     # rounding steps pass for a curvature of 1e4, and a level too high only leaves the
     # row undecided, as it was.
     features = stencils.line_features(values, spacing, float((v[i] / setup.scale[i]) ** 2))
+    if features.lone_value:
+        # Its smooth side's level may be a rounding step's absence, not the noise: the
+        # lines through all coordinates decide (a float32 loss near 0, summed from terms
+        # of size 1, measured 100 times too precise along one coordinate).
+        return None
     size = float(np.max(np.abs(values), initial=abs(setup.f0)))
     return features, relative_precision(setup.runner.output_dtype, features.noise, size)
 
@@ -325,8 +330,38 @@ def complex_safety(runner: CostRunner, base, scale, f0, eps_f, eps, noise, seed)
                 not np.all(np.isfinite(real_run.values)):
             return False, ("the probe could not decide: the cost fails or is not finite near "
                            "the point")
-    return stencils.complex_probe_agrees(complex_run.values, real_run.values, f0,
-                                         stencils.COMPLEX_STEP, t, eps_f, noise)
+    safe, reason = stencils.complex_probe_agrees(complex_run.values, real_run.values, f0,
+                                                 stencils.COMPLEX_STEP, t, eps_f, noise)
+    gap = stencils.slopes_gap(complex_run.values, real_run.values, stencils.COMPLEX_STEP, t)
+    for _ in range(SHORTER_PROBES):
+        if safe or not reason.startswith(stencils.SLOPES_DIFFER):
+            break
+        # The real differences may be the wrong ones: a step far longer than the length
+        # the cost varies on along v (a parameter of natural size 1e-8 whose scale is 1).
+        # Again SHORTER_LINE shorter; a cost that drops the imaginary part (abs(),
+        # conj()) shows the same disagreement at any step.
+        t *= SHORTER_LINE
+        complex_run = runner.run([v, v], [1j * stencils.COMPLEX_STEP, 1j * t],
+                                 label="complex-step probe")
+        real_run = runner.run([v] * 4, [t, -t, 2 * t, -2 * t], label="complex-step probe")
+        if not complex_run.failures and not real_run.failures and \
+                np.all(np.isfinite(real_run.values)):
+            again = stencils.complex_probe_agrees(complex_run.values, real_run.values, f0,
+                                                  stencils.COMPLEX_STEP, t, eps_f, noise)
+            nearer = stencils.slopes_gap(complex_run.values, real_run.values,
+                                         stencils.COMPLEX_STEP, t)
+            if again[0] or not again[1].startswith(stencils.SLOPES_DIFFER) or \
+                    not nearer < 0.5 * gap:
+                # Safe; or inconclusive; or no nearer (a cost that drops the imaginary
+                # part): one more probe, 6 evaluations, and no more.
+                return again if again[0] else (safe, reason)
+            gap = nearer
+    return safe, reason
+
+
+# A complex step whose slope disagrees with the real differences is probed again at
+# steps SHORTER_LINE shorter, up to this many times (2^-30 of the first step).
+SHORTER_PROBES = 3
 
 
 def descent_uphill(runner: CostRunner, analytic, scale, f0, noise, eps_f) -> bool:

@@ -66,6 +66,11 @@ class Near:
     curvature: object = 0.0
     third: object = 0.0
     size: object = None      # |x| per row, for reach(); None: the scale
+    # The relative rounding of the terms a derivative is summed from; None: eps_f.  A
+    # measured noise above the dtype's rounding is already the terms' rounding as the
+    # values show it (a float32 cost near 0 summed from terms of size 1); relative to
+    # |f0| it is no measure of the terms' own precision.
+    eps_terms: object = None
 
 
 def value_noise(values: np.ndarray, near: Near) -> np.ndarray:
@@ -93,9 +98,9 @@ def combine(method: str, values: np.ndarray, h: np.ndarray, scale: np.ndarray,
     # + |f2| * scale; no stencil can be more exact than eps_f times those.
     curvature = np.maximum(est.curvature, line_hint(method, curvature_hint, est, f0, scale))
     size = scale if near.size is None else near.size
-    est.rounding = np.maximum(est.rounding, TERM_ROUNDING * eps_f * (
-        np.abs(est.derivative) + abs(f0) / scale +
-        curvature * reach(est.derivative, curvature, scale, size)))
+    eps_terms = eps_f if near.eps_terms is None else near.eps_terms
+    est.rounding = np.maximum(est.rounding, TERM_ROUNDING * (eps_f * abs(f0) / scale + eps_terms * (
+        np.abs(est.derivative) + curvature * reach(est.derivative, curvature, scale, size))))
     est.noise = noise
     return est
 
@@ -284,6 +289,18 @@ def term_scale(numeric, f0, scale, curvature_times_scale, largest_cap=np.inf) ->
     return np.maximum(own, np.minimum(largest, largest_cap * own))
 
 
+SLOPES_DIFFER = "the complex step disagrees with real differences along a random direction"
+
+
+def slopes_gap(complex_values, real_values, hc: float, t: float) -> float:
+    """|complex slope - extrapolated real slope| relative to the larger, of one probe (the
+    values of complex_probe_agrees)."""
+    dc = complex(complex_values[0]).imag / hc
+    fp, fm, fp2, fm2 = (float(np.real(v)) for v in real_values)
+    slope = (4 * (fp - fm) / (2 * t) - (fp2 - fm2) / (4 * t)) / 3
+    return abs(dc - slope) / max(abs(dc), abs(slope), 1e-300)
+
+
 def complex_probe_agrees(complex_values, real_values, f0: float, hc: float, t: float,
                          eps_f: float, noise: float = 0.0) -> tuple:
     """Is the cost complex-safe?  (safe, reason) from one probe along a direction v.
@@ -315,8 +332,8 @@ def complex_probe_agrees(complex_values, real_values, f0: float, hc: float, t: f
     # even converging like t^2 (x |x| at 0, where C(t) is linear in t).
     slope_tol = 0.25 * abs(c2 - c1) + rounding / t + 1e-12 * max(abs(dc), abs(slope))
     if abs(dc - slope) > slope_tol:
-        return False, ("the complex step disagrees with real differences along a random "
-                       f"direction ({dc:.10g} vs {slope:.10g}): the cost is not complex-safe")
+        return False, (f"{SLOPES_DIFFER} ({dc:.10g} vs {slope:.10g}): the cost is not "
+                       "complex-safe")
     s1, s2 = (fp - 2 * f0 + fm) / t ** 2, (fp2 - 2 * f0 + fm2) / (4 * t ** 2)
     predicted = f0 - t ** 2 * (4 * s1 - s2) / 6       # f0 - t^2 f2 / 2, f2 extrapolated
     curve_tol = t ** 2 * abs(s2 - s1) + 2 * rounding
@@ -406,6 +423,10 @@ class LineFeatures:
     spacing: float = NOISE_SPACING
     largest_curvature_s2: float = 0.0   # the largest typical |f2| * scale^2 of all lines
     settled: bool = True   # the difference table reached a consistent order (or vanished)
+    # A spike in the second differences was left out, and the slopes on both sides of
+    # it are the same: one value off the line.  A pole between two points looks so, and
+    # so does a float32 sum's rounding that steps at one point; the line cannot tell.
+    lone_value: bool = False
 
     @staticmethod
     def none() -> "LineFeatures":
@@ -431,8 +452,10 @@ def line_features(values, t: float, spread: float) -> LineFeatures:
     second = max(0.0, abs(g[2 * m] - 2 * g[m] + g[0]) - 4 * noise)
     slope = max(0.0, float(np.max(np.abs(f - f[mid]))) - 3 * noise)
     third = max(0.0, float(np.max(np.abs(np.diff(g, 3)), initial=0.0)) - 8 * noise)
+    lone = len(g) < len(f) and not _slope_changes(f.tolist(), _kink_point(f.tolist()) - 1)
     return LineFeatures(noise, order, second / (m * t) ** 2 / spread, slope / half,
-                        third / t ** 3, f, t, settled=table_settles(g.tolist(), noise))
+                        third / t ** 3, f, t, settled=table_settles(g.tolist(), noise),
+                        lone_value=lone)
 
 
 def smooth_side(values) -> np.ndarray:
@@ -470,6 +493,17 @@ def _kink_point(f: list):
             second[k] > 10 * np.finfo(float).eps * largest:
         return k + 1
     return None
+
+
+def _slope_changes(f: list, k: int) -> bool:
+    """Whether the spike in the k-th second difference of f is a change of slope (a
+    kink): the signed second differences around it add up to at least half of it.  A
+    value off the line (a float32 sum whose rounding steps by a few units in the last
+    place at one point) makes a spike too, but the ones beside it cancel it (J, -J or
+    J, -2J, J): the slopes on both sides are the same."""
+    second = [(c - b) - (b - a) for a, b, c in zip(f, f[1:], f[2:])]
+    around = second[max(0, k - 1):k + 2]
+    return abs(sum(around)) >= 0.5 * abs(second[k])
 
 
 def noise_from_values(values) -> tuple:

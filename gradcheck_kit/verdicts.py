@@ -44,12 +44,13 @@ ANALYTIC_NOISE = 10.0
 
 
 def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, atol=None,
-                       eps_a=None, eps_dtype=None):
+                       eps_a=None, eps_dtype=None, cost_terms=None):
     """How far apart analytic and numeric may be, per coordinate (see module text).
 
     eps_a is the precision of the analytic values themselves (a float32 gradient of a
     float64 cost carries float32 rounding).  eps_dtype: the epsilon of the cost's dtype,
-    where eps_f is a measured noise above it (None: eps_f is the dtype's).
+    where eps_f is a measured noise above it (None: eps_f is the dtype's).  cost_terms:
+    |f0| / scale per coordinate, what eps_f is relative to (None: the terms).
     """
     if rtol is None and atol is None:
         eps_d = eps_f if eps_dtype is None else min(eps_dtype, eps_f)
@@ -57,9 +58,15 @@ def allowed_difference(analytic, numeric, error, *, terms, eps_f, rtol=None, ato
         # solve) may hand over a gradient as noisy: ANALYTIC_NOISE times that noise on
         # top of the dtype's share, not the cancellation factor again (that gave a GP
         # likelihood's log-noise entry, 1e-12 noisy, an allowance that passed a 0.1%
-        # error); never more than the share of eps_f itself.
-        share = min(_rounding_share(eps_d) + ANALYTIC_NOISE * (eps_f - eps_d),
-                    _rounding_share(eps_f))
+        # error); never more than the share of eps_f itself.  The noise is relative to
+        # |f0|, and counts relative to the terms as the noise of f0 / scale: a float32
+        # cost near 0 summed from terms of size 1 is noisy next to |f0| only.
+        excess = eps_f - eps_d
+        if cost_terms is not None:
+            with np.errstate(all="ignore"):
+                excess = excess * np.where(terms > cost_terms, cost_terms / terms, 1.0)
+        share = np.minimum(_rounding_share(eps_d) + ANALYTIC_NOISE * excess,
+                           _rounding_share(eps_f))
         if eps_a is not None and eps_a > eps_f:
             # Values stored in a lower precision than the cost's carry its rounding on top:
             # about eps_a relative to what they are summed from, no more, so that a 0.1%

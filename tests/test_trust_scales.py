@@ -195,7 +195,10 @@ def _sized_gradient(x):
 def test_a_parameter_of_natural_size_1e_6_passes_and_its_small_error_is_caught(method):
     right = gk.compare_gradient(_sized, X_SIZED, _sized_gradient, method=method)
     assert right.passed, right.to_text()
-    assert "step shortened" in right.to_text()
+    # Real differences must shorten the steps; auto may take the complex step instead
+    # (the cost is complex-safe, and the probe's real differences, too long at first,
+    # are shortened until they agree with it).
+    assert "step shortened" in right.to_text() or right.method == "complex-step"
     off = gk.compare_gradient(_sized, X_SIZED, lambda v: _sized_gradient(v) * FACTOR,
                               method=method)
     assert _verdicts(off)["x[0]"] == "disagree", off.to_text()
