@@ -129,3 +129,54 @@ def test_an_npy_of_text(folder, capsys):
     assert check(capsys, "cost", "words.npy") == (
         "--params: words.npy: its array holds <U1 entries; expected floating-point numbers "
         "(save numbers, not text, dates or records)")
+
+
+def test_a_key_the_cost_looks_up_is_missing(folder, capsys):
+    np.savez(folder / "renamed.npz", v=np.ones(3), b=np.zeros(2))
+    assert check(capsys, "cost", "renamed.npz") == (
+        "--params: renamed.npz lacks 'w', which the cost looks up; it holds 'v' of shape (3,), "
+        "'b' of shape (2,)")
+    # the same through locate, and with --gradient
+    assert check(capsys, "cost", "renamed.npz", command="locate").startswith(
+        "--params: renamed.npz lacks 'w', which the cost looks up")
+    assert params_error(capsys, "model.py:cost", "--gradient", "model.py:grad", "--params",
+                        "renamed.npz").startswith("--params: renamed.npz lacks 'w'")
+
+
+def test_keys_unlike_the_declared_params(folder, capsys):
+    np.savez(folder / "renamed.npz", v=np.ones(3), b=np.zeros(2))
+    assert check(capsys, "declared", "renamed.npz") == (
+        "--params: renamed.npz: cost raised KeyError at the base point: 'w'; expected 'w' of "
+        "shape (3,), 'b' of shape (2,) like the declared params, got 'v' of shape (3,), 'b' "
+        "of shape (2,)")
+
+
+def test_a_shape_the_cost_cannot_take(folder, capsys):
+    np.savez(folder / "wide.npz", w=np.ones(4), b=np.zeros(2))
+    message = params_error(capsys, "model.py:fitted", "--gradient", "model.py:fitted_grad",
+                           "--params", "wide.npz")
+    assert message.startswith("--params: wide.npz: cost raised ValueError at the base point: ")
+    assert message.endswith("; the file holds 'w' of shape (4,), 'b' of shape (2,)")
+
+
+def test_one_array_where_the_declared_params_are_named_arrays(folder, capsys):
+    np.save(folder / "flat.npy", np.ones(5))
+    message = check(capsys, "declared", "flat.npy")
+    assert message.startswith("--params: flat.npy: cost raised IndexError at the base point: ")
+    assert message.endswith("; expected 'w' of shape (3,), 'b' of shape (2,) like the declared "
+                            "params, got one array of shape (5,)")
+
+
+def test_a_file_with_other_shapes_than_declared_that_the_cost_takes_is_checked(folder, capsys):
+    # declared params are an example, not a schema: a bigger point is checked as given
+    np.savez(folder / "big.npz", w=np.ones(5), b=np.zeros(4))
+    code, out, err = run_cli(capsys, "check", "model.py:declared", "--params", "big.npz",
+                             "--quiet")
+    assert code == 0 and "all 9 coordinates agree" in out, out + err
+
+
+def test_a_refused_file_is_left_as_it_was(folder, capsys):
+    np.savez(folder / "renamed.npz", v=np.ones(3), b=np.zeros(2))
+    before = (folder / "renamed.npz").read_bytes()
+    check(capsys, "cost", "renamed.npz")
+    assert (folder / "renamed.npz").read_bytes() == before
