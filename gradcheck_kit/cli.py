@@ -58,6 +58,7 @@ from .files import (ParamsFileError, UnwritablePathError, check_writable, load_p
                     resolve_target, write_atomically)
 from .plan import METHOD_CHOICES, choose_coordinates
 from .tree import flatten
+from .verdicts import name_list
 
 EXIT_OK, EXIT_MISMATCH, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_OUTPUT_CLOSED = 0, 1, 2, 130, 141
 LOADED_PREFIX = "gradcheck_target_"   # module names given to files loaded by path
@@ -469,6 +470,8 @@ def _collect_cases(args, importer: _Importer) -> list:
         return [(name, Case(cost, gradient, params, {}, name))]
     if args.gradient and args.params:     # nothing left of the declarations but options
         declared = [(name, declared[0][1])]
+    # What each declaration's own params hold, for a message when the file's do not suit.
+    args.declared_params = {label: c.params for label, c in declared}
     # An explicit check carries no planted-bug expectation: its exit status says
     # whether this gradient (or these params) agree.
     return [(label, _explicit(c, gradient, params)) for label, c in declared]
@@ -498,12 +501,57 @@ def _explicit(c, gradient, params):
     return dataclasses.replace(c, params=params, expect_mismatch=False)
 
 
-def _leaf_names(tree, prefix="") -> list:
+def _named_leaves(tree, prefix="") -> list:
+    """(dotted name, leaf) pairs of a params structure, in the file's naming."""
     if isinstance(tree, dict):
-        return [n for k, v in tree.items() for n in _leaf_names(v, f"{prefix}{k}.")]
+        return [n for k, v in tree.items() for n in _named_leaves(v, f"{prefix}{k}.")]
     if isinstance(tree, (list, tuple)):
-        return [n for i, v in enumerate(tree) for n in _leaf_names(v, f"{prefix}{i}.")]
-    return [prefix[:-1]]
+        return [n for i, v in enumerate(tree) for n in _named_leaves(v, f"{prefix}{i}.")]
+    return [(prefix[:-1], tree)]
+
+
+def _leaf_names(tree) -> list:
+    return [name for name, _ in _named_leaves(tree)]
+
+
+def _shapes(tree) -> str:
+    """'w' of shape (3,), 'b' of shape (2,): the arrays of params, for messages."""
+    if not isinstance(tree, (dict, list, tuple)):
+        return f"one array of shape {tuple(getattr(tree, 'shape', ()))}"
+    return name_list(f"{name!r} of shape {tuple(getattr(leaf, 'shape', ()))}"
+                     for name, leaf in _named_leaves(tree))
+
+
+def _params_file_unfit(path: str, params, declared, exc: Exception) -> str | None:
+    """The message of a cost (or gradient) that raised at a params file's values, naming
+    the file: what the file holds against what the cost looked up, or against the
+    params declared with the case.  None where the failure is of another kind."""
+    text = str(exc)
+    if not text.startswith(("cost raised", "gradient function raised")) or \
+            not isinstance(exc.__cause__, (LookupError, ValueError, TypeError)):
+        return None
+    held = _shapes(params)
+    known = declared is not None and not callable(declared) and not is_strategy(declared)
+    if known and _shapes(declared) != held:
+        return (f"--params: {path}: {text}; expected {_shapes(declared)} like the declared "
+                f"params, got {held}")
+    cause = exc.__cause__
+    names = {part for name in _leaf_names(params) for part in name.split(".")}
+    if isinstance(cause, KeyError) and cause.args and str(cause.args[0]) not in names:
+        who = "cost" if text.startswith("cost") else "gradient function"
+        return (f"--params: {path} lacks {cause.args[0]!r}, which the {who} looks up; it "
+                f"holds {held}")
+    return f"--params: {path}: {text}; the file holds {held}"
+
+
+def _blame_params_file(args, label: str, c, exc: Exception) -> str | None:
+    """Why a case failed because of the --params file, when it did; None otherwise."""
+    if not args.params:
+        return None
+    misfit = (_params_file_misfit(args.params, c.params, c.gradient)
+              if c.kind == "gradient" else None)
+    return misfit or _params_file_unfit(args.params, c.params,
+                                        getattr(args, "declared_params", {}).get(label), exc)
 
 
 def _params_file_misfit(path: str, params, gradient) -> str | None:
@@ -841,10 +889,16 @@ def _locate_one(args, label: str, c: Case, executor) -> _Outcome:
         raise UsageError(f"locate: case {label} has a vectorized cost, which group testing "
                          "calls one point at a time; use `gradcheck-kit check`")
     seed = args.seed if args.seed is not None else c.options.get("seed")
-    report = locate_mismatches(c.cost, _case_params(label, c, seed), c.gradient, seed=seed,
-                               budget=args.budget, executor=executor,
-                               method=args.method or c.options.get("method", "auto"),
-                               progress=False if args.no_progress else c.options.get("progress"))
+    try:
+        report = locate_mismatches(
+            c.cost, _case_params(label, c, seed), c.gradient, seed=seed, budget=args.budget,
+            executor=executor, method=args.method or c.options.get("method", "auto"),
+            progress=False if args.no_progress else c.options.get("progress"))
+    except CheckInputError as exc:
+        blame = _blame_params_file(args, label, c, exc)
+        if blame:
+            raise UsageError(blame) from exc
+        raise
     result = CaseResult(c, report)
     return _Outcome(label, c, report, result.to_text(), result)
 
@@ -897,10 +951,9 @@ def _check_one(args, label: str, c: Case, executor) -> _Outcome:
     try:
         result = check_case(c, **overrides)
     except CheckInputError as exc:
-        if args.params and c.kind == "gradient":
-            misfit = _params_file_misfit(args.params, c.params, c.gradient)
-            if misfit:
-                raise UsageError(misfit) from exc
+        blame = _blame_params_file(args, label, c, exc)
+        if blame:
+            raise UsageError(blame) from exc
         raise
     return _Outcome(label, c, result.report, result.to_text(), result)
 

@@ -304,8 +304,9 @@ def load_params(path, what: str = "--params"):
     Raises
     ------
     ParamsFileError
-        No such file, a folder, another extension, pickled objects, an empty or
-        unreadable file, or clashing names.
+        No such file, a folder or other non-regular file, another extension, pickled
+        objects, an empty or unreadable file, clashing names, or arrays that do not
+        hold real floating-point numbers (text, integers, complex numbers).
 
     Examples
     --------
@@ -321,22 +322,31 @@ def load_params(path, what: str = "--params"):
         raise ParamsFileError(f"{what}: {given} is a folder; expected a .npz or .npy file")
     if not p.exists():
         raise ParamsFileError(f"{what}: no such file: {given}")
+    if not p.is_file():     # a FIFO would block the read below
+        raise ParamsFileError(f"{what}: {given} is a {_kind(p.stat().st_mode)}; expected a "
+                              ".npz or .npy file")
     if p.suffix.lower() not in PARAMS_SUFFIXES:
         raise ParamsFileError(f"{what}: expected a .npz or .npy file (or a PyTorch .pt), "
                               f"got {p.name}")
     # numpy takes any file without its own header for a pickle: say what the file is not.
     magic = {".npy": b"\x93NUMPY", ".npz": b"PK"}[p.suffix.lower()]
-    with open(p, "rb") as handle:
-        if not handle.read(len(magic)) == magic:
-            raise ParamsFileError(f"{what}: {given} is not a numpy {p.suffix.lower()} file "
-                                  "(its header is missing); save arrays with numpy.save or "
-                                  "numpy.savez")
+    try:
+        with open(p, "rb") as handle:
+            head = handle.read(len(magic))
+    except OSError as exc:
+        raise ParamsFileError(f"{what}: cannot read {given}: {exc.strerror or exc}") from exc
+    if head != magic:
+        raise ParamsFileError(f"{what}: {given} is not a numpy {p.suffix.lower()} file "
+                              "(its header is missing); save arrays with numpy.save or "
+                              "numpy.savez")
+    single = p.suffix.lower() == ".npy"
     try:
         loaded = np.load(p, allow_pickle=False)
-        if p.suffix.lower() == ".npy":
-            return np.asarray(loaded)
-        with loaded:
-            flat = {key: loaded[key] for key in loaded.files}
+        if single:
+            array = np.asarray(loaded)
+        else:
+            with loaded:
+                flat = {key: loaded[key] for key in loaded.files}
     except ValueError as exc:
         if "pickle" in str(exc).lower():
             raise ParamsFileError(f"{what}: {given} holds pickled Python objects, which are "
@@ -345,6 +355,26 @@ def load_params(path, what: str = "--params"):
         raise ParamsFileError(f"{what}: cannot read {given}: {exc}") from exc
     except Exception as exc:  # noqa: BLE001 - a corrupt or foreign file: say so in one line
         raise ParamsFileError(f"{what}: cannot read {given}: {exc}") from exc
+    if single:
+        return _numbers(array, f"{what}: {given}: its array")
     if not flat:
         raise ParamsFileError(f"{what}: {given} holds no arrays")
+    for key, array in flat.items():
+        _numbers(array, f"{what}: {given}: {key!r}")
     return nest_dotted(flat, f"{what} {given}")
+
+
+def _numbers(array: np.ndarray, which: str) -> np.ndarray:
+    """`array` when it holds real floating-point numbers; else why not, naming `which`.
+    The check would refuse the array too, but without naming the file it came from."""
+    dtype = array.dtype
+    if np.issubdtype(dtype, np.floating):
+        return array
+    if np.issubdtype(dtype, np.complexfloating):
+        how = "only real parameters are checked: save real and imaginary parts apart"
+    elif np.issubdtype(dtype, np.integer) or np.issubdtype(dtype, np.bool_):
+        how = "save it with .astype(float)"
+    else:
+        how = "save numbers, not text, dates or records"
+    raise ParamsFileError(f"{which} holds {dtype} entries; expected floating-point numbers "
+                          f"({how})")

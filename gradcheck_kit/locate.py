@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import notes as say
 from . import plan, stencils, verdicts
 from .analytic import analytic_vector
 from .errors import interrupts_as_check_interrupted
@@ -281,25 +282,21 @@ def locate_mismatches(cost, params, gradient=None, *, seed=None, budget=None, ex
         _search(prober, order, None, found, pending)
     except BudgetSpent:
         left = sum(members.size for members in pending)
-        problems.append(
-            f"the budget of {budget} evaluations ran out after {prober.probes} group probes: "
-            f"{len(found)} wrong coordinates isolated so far, {left} coordinates not cleared")
+        problems.append(say.search_budget_spent(budget, prober.probes, len(set(found)), left))
     except SearchStopped:
         pass     # the rows confirmed below (none: the runner evaluates no more) tell the rest
     coords = np.unique(np.array(found, dtype=int))
+    isolated = coords.size
     if budget is not None:   # the confirmations are spent from the budget too
         left = budget - setup.runner.evaluations
         fit = max(0, left // len(plan.OFFSETS[used]))
         if fit < coords.size:
-            problems.append(f"{coords.size - fit} isolated coordinates were not "
-                                  "confirmed on their own: the budget ran out")
+            problems.append(say.unconfirmed(coords.size - fit))
             coords = coords[:fit]
     h = plan.steps(used, setup.base, setup.layout, None, setup.eps)
     comparison = compare(setup, numeric_derivatives(setup, used, coords, h), analytic, None, None)
-    search_note = (f"group testing: {prober.probes} probes over {setup.base.size} "
-                   f"coordinates isolated {coords.size}; each was then checked on its own "
-                   "(a full sweep would have cost "
-                   f"{len(plan.OFFSETS[used]) * setup.base.size} evaluations)")
+    search_note = say.search_note(prober.probes, setup.base.size, isolated, coords.size,
+                                  len(plan.OFFSETS[used]) * setup.base.size)
     report = finish(setup, comparison, used, title=TITLE, notes=method_notes + [search_note],
                     problems=problems)
     report.extra["probes"] = prober.probes

@@ -147,3 +147,31 @@ def nothing_decided(rows: int) -> str:
             "rounded or quantized cost, give a step= long enough to cross its jumps), or "
             "pass allow_undecided=True to accept this")
 
+
+
+# --- the mismatch search (locate.py) ------------------------------------------------------
+def search_note(probes: int, coordinates: int, isolated: int, confirmed: int,
+                sweep: int) -> str:
+    """What the group probes did, and what a full sweep would have cost instead."""
+    if not isolated:
+        found = "isolated none"
+    elif confirmed == isolated:
+        found = (f"isolated {isolated}, " +
+                 ("which was then checked on its own" if isolated == 1 else
+                  "each then checked on its own"))
+    else:
+        found = f"isolated {isolated}, of which {confirmed} could be checked on its own"
+    return (f"group testing: {count(probes, 'probe')} over {count(coordinates, 'coordinate')} "
+            f"{found} (a full sweep would have cost {count(sweep, 'evaluation')})")
+
+
+def search_budget_spent(budget: int, probes: int, isolated: int, left: int) -> str:
+    return (f"the budget of {count(budget, 'evaluation')} ran out after "
+            f"{count(probes, 'group probe')}: {count(isolated, 'wrong coordinate')} isolated "
+            f"so far, {count(left, 'coordinate')} not cleared")
+
+
+def unconfirmed(number: int) -> str:
+    if number == 1:
+        return "1 isolated coordinate was not confirmed on its own: the budget ran out"
+    return f"{number} isolated coordinates were not confirmed on their own: the budget ran out"

@@ -17,7 +17,8 @@ every key is always present:
     title            what was checked: "gradient check", "jacobian check", ...
     passed           bool
     ran              bool: false when the check stopped before any coordinate (a random
-                     cost); `problems` says why
+                     cost); `problems` says why.  A mismatch search that probed has run
+                     even when it isolated no coordinate
     method           the method used ("complex-step", "richardson", ...; the method asked
                      for when the check did not run)
     evaluations      cost evaluations spent (points; a batch of k counts k)
@@ -38,7 +39,8 @@ every key is always present:
                        absolute_error, relative_error, error_estimate, verdict, detail}]
     extra            data of the check that made the report, beyond the rows: the
                      Jacobian's {"outputs": m, "inputs": n}, the remainder-order probe of
-                     a sampled check {"remainder_order": ..., "remainder_passed": ...}
+                     a sampled check {"remainder_order": ..., "remainder_passed": ...},
+                     the group probes of a mismatch search {"probes": ...}
 
 Non-finite numbers are written as null, since JSON has no NaN.
 """
@@ -464,8 +466,9 @@ class GradientReport:
 
     @property
     def ran(self) -> bool:
-        """False when the check stopped before its first coordinate (see `problems`)."""
-        return self.checked > 0 or self.interrupted
+        """False when the check stopped before its first coordinate (see `problems`).  A
+        mismatch search that probed has run even when it isolated no coordinate."""
+        return self.checked > 0 or self.interrupted or self.extra.get("probes", 0) > 0
 
     @property
     def mismatches(self) -> list:
@@ -653,6 +656,16 @@ def _tolerance(x) -> str:
     return f"{float(x):g}"
 
 
+def _empty_search(report: GradientReport) -> str:
+    """The summary of a mismatch search (locate.py) that confirmed no coordinate: it ran,
+    so it says what its probes found rather than 'not run'."""
+    if report.problems:     # the budget ran out, or the executor stopped
+        return f"no coordinate confirmed: {_first_clause(report.problems[0])}"
+    cleared = ("the one coordinate" if report.total == 1
+               else f"all {report.total} coordinates")
+    return f"no mismatch found: {count(report.extra['probes'], 'probe')} cleared {cleared}"
+
+
 def summary_line(report: GradientReport) -> str:
     """The first line of the text: PASS / FAIL / INTERRUPTED, counts, worst error, method.
 
@@ -675,7 +688,10 @@ def summary_line(report: GradientReport) -> str:
     counts = columns.counts()
     checked = len(columns)
     bad = sum(counts.get(v, 0) for v in FAILING)
-    if not checked:
+    empty_search = not checked and "probes" in report.extra and not report.interrupted
+    if empty_search:
+        parts = [_empty_search(report)]
+    elif not checked:
         parts = ["stopped before any coordinate finished"]
     elif bad:
         parts = [f"{bad} of {count(checked, 'coordinate')} fail"]
@@ -686,7 +702,7 @@ def summary_line(report: GradientReport) -> str:
     others = [f"{counts[v]} {v}" for v in VERDICTS if v != "agree" and counts.get(v)]
     if others:
         parts[0] += " (" + ", ".join(others) + ")"
-    if checked < report.total:
+    if checked < report.total and not empty_search:
         parts.append(f"of {report.total} in params")
     worst, over = columns.worst()
     if worst is not None:

@@ -158,3 +158,35 @@ def test_a_central_tolerance_too_loose_to_catch_anything_is_not_offered_to_pin()
     assert report.suggested_central_rtol >= 0.1, line
     assert "central differences cannot check these coordinates" in line, line
     assert "what tests often pin" not in line, line
+
+
+# --- a mismatch search (gk.locate_mismatches) that finds nothing --------------------------
+
+def test_a_mismatch_search_that_finds_nothing_says_so_in_plain_words():
+    report = gk.locate_mismatches(smooth, X, smooth_gradient, seed=0)
+    text = report.to_text()
+    assert text.startswith("PASS mismatch search: no mismatch found: 1 probe cleared all 24 "
+                           "coordinates; method "), text
+    assert "not run" not in text and "1 probes" not in text and "of 24 in params" not in text
+    assert "group testing: 1 probe over 24 coordinates isolated none (" in text
+    assert report.ran and json.loads(report.to_json())["ran"] is True
+
+
+def test_a_mismatch_search_counts_in_the_singular_and_the_plural():
+    one = gk.locate_mismatches(smooth, X[:1], smooth_gradient, seed=0).to_text()
+    assert "no mismatch found: 1 probe cleared the one coordinate" in one, one
+    assert "1 probe over 1 coordinate isolated none" in one
+    wrong = lambda v: smooth_gradient(v) * np.where(np.arange(v.size) == 5, 2.0, 1.0)  # noqa: E731
+    found = gk.locate_mismatches(smooth, X, wrong, seed=0).to_text()
+    assert re.search(r"group testing: \d+ probes over 24 coordinates isolated 1, which was "
+                     r"then checked on its own", found), found
+
+
+def test_a_mismatch_search_cut_short_before_any_coordinate_says_why():
+    # x[5] is wrong; the budgets end the search after its first and second group probes
+    wrong = lambda v: smooth_gradient(v) * np.where(np.arange(v.size) == 5, 2.0, 1.0)  # noqa: E731
+    for budget, probes in ((33, "1 group probe"), (34, "2 group probes")):
+        text = gk.locate_mismatches(smooth, X, wrong, seed=0, budget=budget).to_text()
+        assert text.startswith(f"FAIL mismatch search: no coordinate confirmed: the budget of "
+                               f"{budget} evaluations ran out after {probes}; "), text
+        assert "not run" not in text and "0 wrong coordinates isolated so far" in text
