@@ -467,7 +467,8 @@ RESOLVED_ABOVE = 8.0
 MEASURED_SAFETY = 2.0
 # A row whose value is still mostly rounding climbs: one more central difference at twice
 # the longest step (two evaluations), and the triple one step up is measured, up to
-# LONGEST_CLIMB times (C at 32 times the default step).  The default steps are sized for
+# LONGEST_CLIMB times (a value from 32 times the default step at most, 18 evaluations a
+# row in all, with C(h/4) and the Richardson pass).  The default steps are sized for
 # the dtype's epsilon relative to |f|; a float32 cost near 0 summed from terms of size 1
 # (a distillation loss near its optimum) rounds 1e3 times more than that, and there its
 # rounding, not its curvature, limits the value: the best step was 16 times longer.
@@ -550,12 +551,11 @@ def measured_extrapolation(setup: Setup, coords: np.ndarray, h: np.ndarray,
         _adopt(out, rows[take], rich, np.flatnonzero(take))
         best.put(rows[take], rich.estimates.take(np.flatnonzero(take)))
         measured[rows[take]] = True
-        # Up while rounding dominates: unresolved (not yet the expansion, nor a
-        # departure from it), steady, or measured with rounding above the step error.
+        # Up while rounding dominates: steady, measured with rounding above the step
+        # error, or unresolved while the far difference could still be the expansion's
+        # (at most 4 times the near one, with slack and rounding; one that jumps, a kink
+        # between H and 2H, says the steps are long enough already).
         climbing[:] = False
-        # Unresolved rows climb only while the far difference could still be the
-        # expansion's (at most 4 times the near one, with slack and rounding): one that
-        # jumps (a kink between H and 2H) says the steps are long enough already.
         with np.errstate(all="ignore"):
             could_follow = np.abs(c2 - c1) <= 4 * (1 + RATIO_SLACK) * np.abs(c1 - c_half) + \
                 2 * 3 * unit

@@ -303,7 +303,9 @@ def _take_rows(first: Comparison, parts, detail) -> Comparison:
 LOOSE = 1e-4
 
 
-# A disagreement by at most this many times its allowance is marginal (shorter_steps).
+# A disagreement by at most MARGINAL times its allowance is marginal (shorter_steps): a
+# shortened value that agrees settles it, if its error is at most MARGINAL_LOOSER times
+# the first one's.
 MARGINAL = 4.0
 MARGINAL_LOOSER = 2.0
 
@@ -336,8 +338,12 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
     a = first.analytic[first.numeric.coords]
     with np.errstate(all="ignore"):
         over = np.abs(a - est.derivative) / first.allowed
-        unconfirmed = (first.verdict == "disagree") & (est.truncation > est.rounding) & \
-            np.isfinite(over)
+        # A central or one-sided value's step error is a model from the lines' curvature,
+        # never measured; a fourth-order one's is its gap, in doubt where it dominates (a
+        # complex step's, at a step of 1e-20, is none).
+        modelled = first.numeric.method in ("central", "forward", "backward")
+        unconfirmed = (first.verdict == "disagree") & \
+            (modelled | (est.truncation > est.rounding)) & np.isfinite(over)
     check = np.flatnonzero(unconfirmed)
     check = check[np.argsort(over[check], kind="stable")][:MEASURED_ROWS]
     marginal = np.zeros(len(over), dtype=bool)
@@ -350,12 +356,12 @@ def shorter_steps(setup: Setup, first: Comparison, rtol, atol,
         return first
     shorter, converged = walk_down(setup, first.numeric, bad)
     again = compare(setup, shorter, first.analytic, rtol, atol, analytic_eps)
-    # A marginal disagreement whose value, shortened until two steps agree, agrees:
+    # A converged value replaces the first where its error is smaller; where it shows the
+    # first one off by more than that one's error estimate, whatever its own (the first
+    # estimate is refuted); and where a marginal disagreement's shortened value agrees:
     # the first step's error, not the gradient, is in doubt (in float32 the shorter
-    # step's rounding may make its error no smaller, but at most MARGINAL_LOOSER times
-    # larger: a recheck that knows much less cannot overrule).
-    # A converged value that shows the first one off by more than its error estimate
-    # replaces it too, whatever its own error: the first estimate is refuted.
+    # step's rounding may make its error no smaller, but a recheck that knows much less
+    # cannot overrule).
     shown_off = np.abs(shorter.estimates.derivative - est.derivative[bad]) > \
         verdicts.SAFETY * est.error[bad] + shorter.estimates.error
     settled = converged & ((shorter.estimates.error < est.error[bad]) | shown_off |
@@ -426,7 +432,14 @@ def own_lines(setup: Setup, first: Comparison, rtol, atol, analytic_eps=None) ->
         alone = replace(setup, line=line, eps_f=min(eps_f, setup.eps_f))
         numeric = numeric_derivatives(alone, "richardson", np.array([c]), h)
         again = compare(alone, numeric, first.analytic, rtol, atol, analytic_eps)
-        if again.verdict[0] in ("agree", "disagree", "kink"):
+        # Its own line tightens the row's allowance; a disagreement it finds must be about
+        # the same value, within both error estimates: a recheck far from the first value
+        # shows one estimate wrong, not the gradient (a Richardson step of 32 on float32
+        # logits near 1000 against an exact complex step).
+        new_est = again.numeric.estimates
+        same = abs(new_est.derivative[0] - est.derivative[j]) <= \
+            verdicts.SAFETY * est.error[j] + new_est.error[0]
+        if again.verdict[0] in ("agree", "kink") or (again.verdict[0] == "disagree" and same):
             decided.append((np.array([j]), again, np.array([0])))
     if not decided:
         return first
