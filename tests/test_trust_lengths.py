@@ -186,13 +186,36 @@ def _logits():
     return cost, gradient, z
 
 
-def test_float32_logits_near_1000_pass_with_central_differences():
-    # Before: x[7] disagreed (numeric -0.99245 against -0.99886, estimate 1.6e-3): the step
-    # of 4 carried 4 times more step error than its model said.
+@pytest.mark.parametrize("method", ["central", "auto"])
+def test_float32_logits_near_1000_pass(method):
+    # Before, central: x[7] disagreed (numeric -0.99245 against -0.99886, estimate 1.6e-3):
+    # the step of 4 carried 4 times more step error than its model said.  Auto (the
+    # complex step): x[21]'s own noise line, with a Richardson step of 32, overruled the
+    # exact value.
     cost, gradient, z = _logits()
     z64 = z.astype(float)
     exact = np.exp(z64 - z64.max()) / np.sum(np.exp(z64 - z64.max()))
     exact[7] -= 1
     np.testing.assert_allclose(gradient(z), exact, atol=1e-6)
-    report = gk.compare_gradient(cost, z, gradient, method="central", seed=0)
+    report = gk.compare_gradient(cost, z, gradient, method=method, seed=0)
     assert report.passed, report.to_text()
+
+
+# --- log Gamma from 1e-8 to 1e10 in one sum ----------------------------------------------
+# d/dx log Gamma(x) = digamma(x) (DLMF 5.2.2).  The term at 1e10 makes the cost's rounding
+# 5e-5, and the pole at 0 keeps x[0]'s steps below 1e-8: its value is known to about 1%.
+def test_a_five_percent_error_beside_a_pole_in_a_rounded_sum_is_caught():
+    from scipy.special import loggamma, psi
+    x = np.array([1e-8, 1e-4, 0.5, 1.4616321449683622 + 1e-6, 3.0, 10.0, 1e3, 1e6, 1e10])
+    with mp.workdps(30):
+        assert abs(psi(x[0]) - float(mp.digamma(mp.mpf(1e-8)))) <= 1e-12 * 1e8
+    # Weights of alternating sign, so that the terms do not all grow together.
+    w = (1.0 + 0.1 * np.arange(9)) * np.where(np.arange(9) % 2 == 0, 1.0, -1.0)
+    wrong = w * psi(x) * np.r_[1.05, np.ones(8)]
+    for method in ("central", "richardson"):
+        # A guard: a value shortened until two steps agree, known 2.6 times more loosely
+        # than the first, must not settle the marginal disagreement as agreeing (it did
+        # in a corpus run before MARGINAL_LOOSER).
+        report = gk.compare_gradient(lambda v: np.sum(w * loggamma(v)), x, wrong,
+                                     method=method, seed=0)
+        assert _verdict(report, "x[0]") == "disagree", (method, report.to_text())
