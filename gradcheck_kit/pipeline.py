@@ -52,7 +52,8 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
     scale = stencils.scale_of(base)
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
     lines = probes.measure_lines(runner, base, scale, f0,
-                                 max(dtype_eps, float(np.max(leaf_eps(layout)))))
+                                 max(dtype_eps, float(np.max(leaf_eps(layout)))),
+                                 probes.leaf_largest(base, layout))
     if lines.flat and not lines.quantized:
         lines = probes.look_coarser(runner, lines, f0)
     eps_f, noisy, eps = probes.precision(lines, f0, runner.output_dtype, leaf_eps(layout))

@@ -118,23 +118,41 @@ OWN_SIZE_SHARE = 2.0 ** 16
 SMALLEST_OF_SCALE = 2.0 ** -40
 
 
-def line_reach(base, scale) -> np.ndarray:
+def leaf_largest(base, layout: Layout) -> np.ndarray:
+    """Per coordinate, the largest finite |x| of its parameter (leaf)."""
+    out = np.zeros(base.size)
+    for leaf in layout.leaves:
+        part = np.abs(base[leaf.offset:leaf.offset + leaf.size])
+        part = part[np.isfinite(part)]
+        out[leaf.offset:leaf.offset + leaf.size] = float(np.max(part, initial=0.0))
+    return out
+
+
+def line_reach(base, scale, largest=None) -> np.ndarray:
     """How far the noise lines move each coordinate, per unit of their spacing: its
     scale, or OWN_SIZE_SHARE times |x| where that is smaller and |x| is above
-    SMALLEST_OF_SCALE of the scale."""
+    SMALLEST_OF_SCALE of the scale.  An entry at or below that share (or 0) in a
+    parameter whose largest entry is above it (`largest`, per coordinate) moves as that
+    entry would: positions in metres, near 1e-10, with one particle at the origin; along
+    its scale of 1 the lines carried that particle out of the cluster, and the cost's
+    change passed for noise 1e5 times its rounding."""
     size = np.abs(base)
     with np.errstate(invalid="ignore", over="ignore"):
+        if largest is not None:
+            tiny = ~(size > SMALLEST_OF_SCALE * scale) & \
+                (largest > SMALLEST_OF_SCALE * scale)
+            size = np.where(tiny, largest, size)
         own = OWN_SIZE_SHARE * size
         small = np.isfinite(size) & (size > SMALLEST_OF_SCALE * scale) & (own < scale)
     return np.where(small, own, scale)
 
 
-def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
+def measure_lines(runner: CostRunner, base, scale, f0, eps, largest=None) -> Lines:
     """Cost values along three random lines with unrelated spacings (More & Wild's
     difference table on each); the larger consistent noise level is kept."""
     t = stencils.noise_spacing(eps)
     seen, undefined = [], False
-    reach = line_reach(base, scale)
+    reach = line_reach(base, scale, largest)
     v1 = noise_direction(base.size, reach, 0)
     for seed, spacing in ((0, t), (1, t * SECOND_LINE_SPACING), (3, t * THIRD_LINE_SPACING)):
         v = v1 if seed == 0 else noise_direction(base.size, reach, seed)
@@ -146,7 +164,8 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps) -> Lines:
             continue
         spread = float(np.sum((v / scale) ** 2))
         seen.append(_settled_line(runner, v, spacing, f0, values,
-                                  stencils.line_features(values, spacing, spread), spread))
+                                  stencils.line_features(values, spacing, spread), spread,
+                                  eps))
     if not seen:
         return Lines(stencils.LineFeatures.none(), False, False, undefined, v1)
     # The largest noise level; the other features (typical curvature, slope, third
@@ -213,17 +232,42 @@ def _too_noisy(features, f0: float) -> bool:
     return features.noise > LARGEST_RELATIVE_NOISE * abs(f0)
 
 
-def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread) -> tuple:
+# A line is straight between a few bends where at least STRAIGHT_PLACES of its second
+# differences are below BEND_SHARE of the largest: noise changes every one of them (7 of 7
+# on 1e-8 sin(1e8 x)), a line across ReLU kinks leaves most at 0.
+BEND_SHARE = 0.05
+STRAIGHT_PLACES = 3
+
+
+def _straight_between_bends(values) -> bool:
+    """Values that a few kinks bend, straight elsewhere: not noise, whatever its level."""
+    d2 = np.abs(np.diff(values, 2))
+    return int(np.sum(d2 <= BEND_SHARE * np.max(d2))) >= STRAIGHT_PLACES
+
+
+def _reads_noisy(features, values, eps: float) -> bool:
+    """A level that would make the cost noisy (NOISY_ABOVE times eps of its values), on a
+    line straight between a few bends (_straight_between_bends)."""
+    return features.noise > NOISY_ABOVE * eps * float(np.max(np.abs(values))) and \
+        _straight_between_bends(values)
+
+
+def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread,
+                  eps: float = 0.0) -> tuple:
     """(values, features, direction) of a line, measured again at shorter spacings where
     its table does not settle, or settles at a level too large for noise (_too_noisy): the
     cost may vary on a length shorter than the spacing along v (a pole or a fast
     oscillation near the point, gammaln at 1e-6, tanh(x / 1e-6)), whose smooth change
-    passes for noise.  The shorter line is taken where its level is less than half:
-    noise that is really there keeps its level at any spacing (one more line, 8
-    evaluations, for a cost that is that noisy)."""
+    passes for noise.  So is a settled level that would make the cost noisy on a line
+    straight between a few bends (_reads_noisy): a line across kinks (ReLUs whose inputs
+    are within 1e-7 of 0) settles at a level that scales with the spacing, and read as
+    noise it grew every step 100-fold, across the kinks.  The shorter line is taken
+    where its level is less than half: noise that is really there keeps its level at any
+    spacing (one more line, 8 evaluations, for a cost that is that noisy)."""
     best = (values, features)
     unsettled = not features.settled
-    if not unsettled and not _too_noisy(features, f0):
+    if not unsettled and not _too_noisy(features, f0) and \
+            not _reads_noisy(features, values, eps):
         return best + (v,)
     # An unsettled line tries every shorter spacing: a line across a pole can look like
     # steady noise at one of them (gammaln at 1e-7, spacing 7e-8), the same level as the
