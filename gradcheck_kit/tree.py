@@ -122,9 +122,14 @@ def _check_leaf(value: Any, path: tuple, what: str) -> tuple:
             "(use .astype(float))")
     if isinstance(value, (complex, np.complexfloating)):
         raise CheckTypeError(f"{what} leaf '{name}' is complex; only real parameters are checked")
+    # A callable where values belong is most often the gradient passed in params' place:
+    # the arguments are (cost, params, gradient).
+    swapped = " (is the gradient function in params' place? the order is cost, params, " \
+        "gradient)" if callable(value) and what == "params" and not path else ""
+    where = f"{what} leaf '{name}'" if path else what
     raise CheckTypeError(
-        f"{what} leaf '{name}' is a {type(value).__name__}; expected a float, a float ndarray, "
-        "or a dict / list / tuple of those")
+        f"{where} is a {type(value).__name__}; expected a float, a float ndarray, "
+        f"or a dict / list / tuple of those{swapped}")
 
 
 def _as_values(value: Any, path: tuple, what: str) -> tuple:

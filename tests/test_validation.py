@@ -244,3 +244,17 @@ def test_a_gradient_with_other_keys_names_the_keys_of_both():
         gk.compare_gradient(lambda p: np.sum(p["a"]) + np.sum(p["b"]),
                             {"a": np.ones(2), "b": np.ones(2)},
                             lambda p: {"a": np.ones(2), "c": np.ones(2)})
+
+
+def test_gradient_passed_in_params_place_says_the_order():
+    # A function where params belong: the message names params (not a leaf 'x') and
+    # says the order of the arguments.
+    with pytest.raises(gk.CheckTypeError) as info:
+        gk.compare_gradient(lambda w: np.sum(w ** 2), lambda w: 2 * w, np.ones(3))
+    text = str(info.value)
+    assert text.startswith("params is a function")
+    assert "cost, params, gradient" in text
+    with pytest.raises(gk.CheckTypeError) as info:
+        gk.compare_gradient(lambda w: 0.0, {"a": lambda w: w}, None)
+    assert "params leaf 'a' is a function" in str(info.value)
+    assert "cost, params, gradient" not in str(info.value)
