@@ -113,8 +113,10 @@ def long_check(seconds: float, calls: int, per_call: float, *, sampled: bool,
 
 # --- after the comparison -----------------------------------------------------------------
 def rechecked(agreed, method: str) -> str:
+    # Says which stencil decided: the report's method line names the first one only.
     return (f"{count(len(agreed), 'coordinate')} where the {method} differences disagreed "
-            f"were rechecked with real differences and pass: {name_list(agreed)}")
+            f"or only roughly agreed were rechecked with Richardson extrapolation and pass "
+            f"by its values: {name_list(agreed)}")
 
 
 def lower_precision_gradient(eps_a: float) -> str:

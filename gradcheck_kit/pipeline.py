@@ -271,7 +271,7 @@ def second_opinion(setup: Setup, first: Comparison, rtol, atol,
     if not settled.any():
         return first
     taken = _take_rows(first, [(bad[settled], again, np.flatnonzero(settled))],
-                       lambda _k: "decided by real differences")
+                       lambda _k: "decided by Richardson extrapolation")
     agreed = [coordinate_name(setup.layout, int(c))
               for c, v in zip(coords[settled], again.verdict[settled]) if v == "agree"]
     notes = list(first.notes)
