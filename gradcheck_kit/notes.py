@@ -143,6 +143,14 @@ def undecided(names, noise: float) -> str:
             f"{noise:.2g}): {name_list(names)}")
 
 
+def kinks_unresolved(names) -> str:
+    return (f"{count(len(names), 'coordinate')} could not be decided: kinks lie near the "
+            "point, a difference across one is off by more than its error estimate, and "
+            "the one-sided differences short enough to miss them are too rounded to tell "
+            f"in this precision: {name_list(names)}; check them at a point farther from "
+            "the kinks, or in float64")
+
+
 def nothing_decided(rows: int) -> str:
     return (f"no coordinate could be decided: all {rows} are undecided (noisy), so nothing "
             "was checked; make the cost deterministic and smooth at this point (for a "

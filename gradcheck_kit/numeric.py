@@ -571,3 +571,84 @@ def _richardson_from(setup: Setup, coords, h, values) -> Numeric:
     return Numeric(coords, np.array(h, dtype=float), values, est,
                    ~np.isfinite(values).all(axis=1), [""] * len(coords),
                    np.ones(len(coords), dtype=bool), "richardson")
+
+
+# --- each side of the point alone ---------------------------------------------------------
+# A central stencil that crosses a kink near the point (a ReLU whose pre-activation is
+# 1e-4 from 0, in float32 where the step is 4e-3) mixes two slopes, and no error model of
+# a smooth cost covers that.  The cost is smooth on at least one side up to the nearest
+# kink, so one-sided values tell: on each side v(s) = 2 D(s) - D(2s), second order, with
+# D(t) = (f(x + t) - f(x)) / t (backward: (f(x) - f(x - t)) / t), and its error bounded
+# by its distance to the same value one step up, v(2s), plus rounding.  Both sides have
+# the same leading error (-f3 s^2 / 3), so on a smooth cost they agree within it; across
+# a kink at d < 4s one side is off by a share of the jump in slope.  The ladder shrinks s
+# SIDE_SHRINK-fold a rung, up to SIDE_RUNGS rungs, reusing the longer rung's values.
+SIDE_SHRINK = 4
+SIDE_RUNGS = 6
+# D(t) at the steps 4 s0 2^-j, j = 0 .. SIDE_LEVELS - 1: rung k uses j = 2k, 2k + 1, 2k + 2.
+SIDE_LEVELS = 2 * SIDE_RUNGS + 1
+# Rounding of v(s) = (2 f(x + s) - f(x + 2s) / 2 - 3 f(x) / 2) / s per unit of one value's
+# noise over s: the sum of the weights' sizes.
+SIDE_ROUNDING = 4.0
+
+
+@dataclass
+class SideLadder:
+    """One-sided slopes D(t) = +-(f(x +- t) - f(x)) / t of some rows at the steps
+    4 s0 2^-j (columns j), filled as rungs need them (nan until then)."""
+    coords: np.ndarray
+    s0: np.ndarray
+    plus: np.ndarray             # (rows, SIDE_LEVELS)
+    minus: np.ndarray
+    noise: np.ndarray            # (rows, SIDE_LEVELS): a bound on one value's noise
+    failed: np.ndarray           # a point raised or was not finite
+
+
+@dataclass
+class SideRung:
+    """The two one-sided values of some rows at one rung, and their error bounds."""
+    plus: np.ndarray
+    minus: np.ndarray
+    plus_error: np.ndarray
+    minus_error: np.ndarray
+    step: np.ndarray
+    curvature: np.ndarray        # |f2| from the more precise side's slopes
+    rounding: np.ndarray
+    noise: np.ndarray            # a bound on one value's noise at this rung's points
+
+
+def side_ladder(coords: np.ndarray, s0: np.ndarray) -> SideLadder:
+    n = len(coords)
+    empty = np.full((n, SIDE_LEVELS), np.nan)
+    return SideLadder(coords, s0, empty, empty.copy(), empty.copy(), np.zeros(n, dtype=bool))
+
+
+def side_rung(setup: Setup, ladder: SideLadder, rows: np.ndarray, k: int) -> SideRung:
+    """Rung k of the ladder at `rows` (positions in it): the slopes it lacks are measured
+    (two evaluations per row and step), then each side's value and error bound."""
+    near = stencils.Near(setup.f0, setup.eps_f, setup.line.noise)
+    for j in (2 * k, 2 * k + 1, 2 * k + 2):
+        todo = rows[np.isnan(ladder.plus[rows, j]) & ~ladder.failed[rows]]
+        if todo.size == 0:
+            continue
+        t = 4.0 * ladder.s0[todo] / 2.0 ** j
+        for method, slopes in (("forward", ladder.plus), ("backward", ladder.minus)):
+            done = one_pass(setup, method, ladder.coords[todo], t)
+            slopes[todo, j] = done.estimates.derivative
+            bad = done.failed | ~np.isfinite(done.values.real).all(axis=1) | ~done.done
+            ladder.failed[todo] |= bad
+            ladder.noise[todo, j] = np.fmax(ladder.noise[todo, j],
+                                            stencils.value_noise(done.values, near))
+    s = 4.0 * ladder.s0[rows] / 2.0 ** (2 * k + 2)
+    noise = np.nanmax(ladder.noise[rows][:, 2 * k:2 * k + 3], axis=1, initial=0.0)
+    rounding = SIDE_ROUNDING * noise / s
+
+    def side(d):
+        near_v = 2 * d[rows, 2 * k + 2] - d[rows, 2 * k + 1]     # v(s)
+        far_v = 2 * d[rows, 2 * k + 1] - d[rows, 2 * k]          # v(2s)
+        return near_v, np.abs(near_v - far_v) + rounding
+    plus, plus_error = side(ladder.plus)
+    minus, minus_error = side(ladder.minus)
+    best = np.where(plus_error <= minus_error, ladder.plus[rows].T, ladder.minus[rows].T).T
+    curvature = 2 * np.abs(best[:, 2 * k + 2] - best[:, 2 * k + 1]) / s
+    return SideRung(plus, minus, plus_error, minus_error, s, curvature, rounding, noise)

@@ -23,7 +23,8 @@ from .frameworks import takes_framework_values
 from .hints import central_error, central_tolerances, uphill_hint
 from .hints import hints as mismatch_hints
 from .numeric import (Numeric, long_for_length, measured_extrapolation, numeric_derivatives,
-                      term_sizes, walk_down)
+                      SIDE_RUNGS, SIDE_SHRINK, side_ladder, side_rung, term_sizes,
+                      walk_down)
 from .probes import Setup
 from .reevaluate import Reevaluation, remainder_along
 from .report import GradientReport, RowColumns, outside_note
@@ -51,11 +52,11 @@ def prepare(cost, params, *, vectorized=False, executor=None, progress=None,
         notes.append(say.non_finite_params([coordinate_name(layout, int(i)) for i in bad]))
     scale = stencils.scale_of(base)
     dtype_eps = float(np.finfo(runner.output_dtype).eps)
-    lines = probes.measure_lines(runner, base, scale, f0,
-                                 max(dtype_eps, float(np.max(leaf_eps(layout)))),
+    values_eps = max(dtype_eps, float(np.max(leaf_eps(layout))))
+    lines = probes.measure_lines(runner, base, scale, f0, values_eps,
                                  probes.leaf_largest(base, layout))
     if lines.flat and not lines.quantized:
-        lines = probes.look_coarser(runner, lines, f0)
+        lines = probes.look_coarser(runner, lines, f0, values_eps)
     eps_f, noisy, eps = probes.precision(lines, f0, runner.output_dtype, leaf_eps(layout))
     notes += say.lower_precision(runner.output_dtype,
                                  [leaf.name for leaf in layout.leaves if leaf.dtype != np.float64])
@@ -174,6 +175,9 @@ class Comparison:
     # The tool's own allowance (as `allowed` when no rtol / atol was given), which the
     # hints test their patterns against, never the caller's tolerances.
     own_allowed: np.ndarray = None
+    # Rows left undecided because a kink lies on both sides within every step tried
+    # (one_sided_recheck): their own note says so, not the noise note.
+    unresolved: tuple = ()
 
 
 def compare(setup: Setup, numeric: Numeric, analytic: np.ndarray, rtol, atol,
@@ -498,6 +502,187 @@ def measured_rows(setup: Setup, first: Comparison, rtol, atol,
                       lambda _k: "step error measured from one more difference")
 
 
+# A side whose error bound is at most this share of the gap between the two sides'
+# values is settled; two settled sides apart, whose slopes hold from one rung to the next
+# (within this share of the gap too), are the two slopes of a kink at the point.
+SETTLED_SIDE = 0.1
+# At most this many rows are rechecked (two evaluations per row and step, six to
+# eighteen steps a row): where kinks are about, many stencils may have crossed one.
+KINKED_ROWS = 32
+# Where kinks are in evidence, agreements this far apart or more are rechecked too.
+KINKED_SHARE = 1e-3
+
+
+def one_sided_recheck(setup: Setup, first: Comparison, rtol, atol,
+                      analytic_eps=None) -> Comparison:
+    """In a low-precision cost (float32, float16), measure from each side of the point
+    alone (numeric.side_rung) the rows that disagree, agree although VAGUE_SHARE or
+    more apart (KINKED_SHARE where kinks are in evidence), or sit on a kink: up to
+    KINKED_ROWS, disagreements nearest their allowance first.
+
+    float32's steps are long (4e-3 at size 1): a stencil across a kink near the point
+    (a ReLU 1e-4 from its hinge) mixes two slopes, and its error bound, a smooth cost's,
+    does not cover that.  Rung by rung, on ever shorter steps: where the two sides
+    agree within their bounds the cost is smooth across them, and they settle the row
+    where they know more than the first value or show it off; where the analytic value
+    lies beyond both sides by more than their bounds, it is wrong, kink or not; where
+    both sides settle apart and hold there at the next rung, a kink lies at the point,
+    and the analytic value must lie between them.  Where kinks are in evidence (the
+    noise lines crossed some, the first pass found some, or some rung's sides stood
+    apart), a row that no rung settled or confirmed is undecided: its first value's
+    bound proves nothing, and neither 'disagree' nor 'agree' would be earned.  A cost
+    with no kinks in evidence keeps its first verdicts."""
+    if setup.lines is None or setup.noisy or setup.lines.quantized or \
+            setup.runner.interrupted:
+        return first
+    # The complex step never leaves the point: a kink beside it does not touch its value.
+    if np.finfo(setup.runner.output_dtype).eps < probes.LOW_PRECISION_EPS or \
+            first.numeric.method == "complex-step":
+        return first
+    est = first.numeric.estimates
+    a_all = first.analytic[first.numeric.coords]
+    with np.errstate(all="ignore"):
+        over = np.abs(a_all - est.derivative) / first.allowed
+        apart = verdicts.relative_error(a_all, est.derivative)
+    usable = np.isfinite(over) & ~first.numeric.failed
+    wrong = np.flatnonzero((first.verdict == "disagree") & usable)
+    wrong = wrong[np.argsort(over[wrong], kind="stable")]
+    # Kinks in evidence before the ladder: the lines crossed some, or the first pass
+    # found some.  Then agreements within a share far below VAGUE_SHARE prove little
+    # too: a stencil across a kink may be off by more than its bound (a 10% error passed
+    # at 1.3% apart); the farthest apart first.
+    kinks_seen = setup.lines.kinked or bool(np.any(first.verdict == "kink"))
+    share = KINKED_SHARE if kinks_seen else VAGUE_SHARE
+    vague = np.flatnonzero((((first.verdict == "agree") & (apart >= share)) |
+                            (first.verdict == "kink")) & usable)
+    vague = vague[np.argsort(-apart[vague], kind="stable")]
+    rows = np.concatenate([wrong, vague])[:KINKED_ROWS]
+    if rows.size == 0:
+        return first
+    coords = first.numeric.coords[rows]
+    # How far the first stencils reached (five-point's to twice its step).
+    first_reach = first.numeric.h[rows] * (2.0 if first.numeric.method == "five-point" else 1.0)
+    # The first rung reaches 4 central steps, or the first stencil's reach where that is
+    # longer: a kink the first stencil crossed must show there.
+    central = plan.steps("central", setup.base, setup.layout, None, setup.eps)[coords]
+    ladder = side_ladder(coords, np.maximum(central, first_reach / 4))
+    # Steps below this many units of x's last place would be rounded away by x + s.
+    shortest = 16 * setup.eps[coords] * np.abs(setup.base[coords])
+    n_first, err_first = est.derivative[rows], est.error[rows]
+    # The sides measure their own curvature: the lines' slope and bends are every
+    # coordinate's (a pole in another parameter would swamp these rows' allowance).
+    own_bends = replace(setup, line=replace(setup.line, slope=0.0, curvature_s2=0.0,
+                                            third=0.0))
+    parts, open_rows = [], np.arange(rows.size)
+    decided = np.zeros(rows.size, dtype=bool)
+    kink_before = np.full((2, rows.size), np.nan)  # the slopes of a kink seen one rung up
+    last = np.full((4, rows.size), np.nan)         # each row's last sides, step, bound
+    last_smooth = np.zeros(rows.size, dtype=bool)
+    for k in range(SIDE_RUNGS):
+        if open_rows.size == 0 or setup.runner.interrupted:
+            break
+        rung = side_rung(setup, ladder, open_rows, k)
+        ok = ~ladder.failed[open_rows]
+        at = rows[open_rows]
+        last[:, open_rows] = rung.plus, rung.minus, rung.step, \
+            np.maximum(rung.plus_error, rung.minus_error)
+        gap = np.abs(rung.plus - rung.minus)
+        # Smooth: the sides agree, and so do their drifts v(s) - v(2s) (both f3 s^2 on
+        # a smooth cost; a side across a kink drifts by a share of the jump instead),
+        # within their rounding (1.5 times v's each) and half the larger drift.
+        drift_plus, drift_minus = rung.plus_error - rung.rounding, rung.minus_error - rung.rounding
+        same_drift = np.abs(drift_plus - drift_minus) <= \
+            3 * rung.rounding + 0.5 * np.maximum(drift_plus, drift_minus)
+        smooth = ok & (gap <= rung.plus_error + rung.minus_error) & same_drift
+        low, high = np.minimum(rung.plus, rung.minus), np.maximum(rung.plus, rung.minus)
+        settled_apart = ok & ~smooth & (np.maximum(rung.plus_error, rung.minus_error) <=
+                                        SETTLED_SIDE * gap)
+        with np.errstate(invalid="ignore"):
+            held = (np.abs(low - kink_before[0, open_rows]) <= SETTLED_SIDE * gap) & \
+                (np.abs(high - kink_before[1, open_rows]) <= SETTLED_SIDE * gap)
+        at_kink = settled_apart & held
+        kinks_seen |= bool(np.any(ok & ~smooth))   # two sides apart beyond their bounds
+        last_smooth[open_rows] = smooth
+        kink_before[:, open_rows] = np.where(settled_apart, [low, high], np.nan)
+        # The value of the more precise side, trusted only to the less precise one's
+        # bound: a side across a kink much nearer than its steps looks smooth (its
+        # slopes drift like a curvature), and only the other side can show it.
+        plus_side = rung.plus_error <= rung.minus_error
+        value = np.where(plus_side, rung.plus, rung.minus)
+        error = np.maximum(rung.plus_error, rung.minus_error)
+        rounding = np.minimum(rung.rounding, error)
+        m = open_rows.size
+        numeric = Numeric(coords[open_rows], rung.step, np.full((m, 2), setup.f0),
+                          stencils.Estimates(value, error - rounding, rounding, rung.curvature,
+                                             np.zeros(m), rung.noise),
+                          np.zeros(m, dtype=bool), [""] * m, np.ones(m, dtype=bool), "central")
+        again = compare(own_bends, numeric, first.analytic, rtol, atol, analytic_eps)
+        knows_more = again.allowed < first.allowed[at]
+        shown_off = np.abs(value - n_first[open_rows]) > \
+            verdicts.SAFETY * err_first[open_rows] + error
+        # Off: the analytic value lies beyond both sides, on one side of them, by more
+        # than the allowance of the less precise one.  Kink or not, the derivative is not
+        # there: each side's bound covers what a kink within its reach does to it.
+        a = first.analytic[numeric.coords]
+        says_no = ok & (again.verdict == "disagree") & \
+            (np.minimum(a - low, high - a) < -again.allowed)
+        # Smooth sides settle a row where they know more or show the first value off:
+        # their verdict and numbers replace it; so do sides off a first agreement.  Sides
+        # off where the first value disagreed too confirm that with values no kink
+        # spoiled: the first (more precise) numbers stay.
+        take = (smooth & (knows_more | shown_off)) | \
+            (says_no & (first.verdict[at] != "disagree"))
+        confirmed = ~take & says_no
+        if at_kink.any():
+            kinks = stencils.Kinks(at_kink, low, high, rung.plus_error + rung.minus_error)
+            again.verdict = verdicts.apply_kinks(again.verdict, first.analytic[numeric.coords],
+                                                 kinks, again.allowed, again.details)
+            take |= at_kink
+        for j in np.flatnonzero(take):
+            if again.details[j]:
+                continue
+            if smooth[j]:
+                again.details[j] = (f"decided by one-sided differences at step "
+                                    f"{rung.step[j]:.3g} (no kink on the side used)")
+            else:
+                again.details[j] = (f"analytic outside the one-sided values {low[j]:.6g} "
+                                    f"and {high[j]:.6g} at step {rung.step[j]:.3g}")
+        if take.any():
+            parts.append((at[take], again, np.flatnonzero(take)))
+        decided[open_rows] |= take | confirmed
+        # Shorter rungs round SIDE_SHRINK times more: go on only while that can still
+        # know more than the first value, and x + s keeps the step.
+        more = ok & ~(smooth | at_kink | take | confirmed) & \
+            (SIDE_SHRINK * rung.rounding < first.allowed[at]) & \
+            (rung.step / SIDE_SHRINK >= shortest[open_rows])
+        open_rows = open_rows[more]
+    # Undecided: a row no rung settled or confirmed.  On lines across kinks its first
+    # value's error bound, a smooth cost's, proves nothing, and in float32 the one-sided
+    # values short enough to miss the kinks may round too much to tell.
+    unresolved = np.flatnonzero(~decided & ~ladder.failed & kinks_seen &
+                                np.isin(first.verdict[rows], ("disagree", "agree")))
+    if not parts and unresolved.size == 0:
+        return first
+    out = _take_rows(first, parts, lambda _k: "") if parts else \
+        replace(first, verdict=first.verdict.copy(), details=list(first.details))
+    names = []
+    for j in unresolved:
+        r = rows[j]
+        out.verdict[r] = "noisy"
+        sides = (f"one-sided values {last[0, j]:.6g} and {last[1, j]:.6g} at step "
+                 f"{last[2, j]:.3g}")
+        out.details[r] = (f"undecided: kinks near the point, and the {sides}, each "
+                          f"within {last[3, j]:.2g}, are too rounded to tell") \
+            if last_smooth[j] else \
+            f"undecided: a kink lies within every step long enough to tell ({sides})"
+        names.append(coordinate_name(setup.layout, int(coords[j])))
+    notes = list(out.notes)
+    if names:
+        notes.append(say.kinks_unresolved(names))
+    return replace(out, notes=notes,
+                   unresolved=tuple(out.unresolved) + tuple(int(c) for c in coords[unresolved]))
+
+
 def rows_of(setup: Setup, comp: Comparison) -> RowColumns:
     """The report's rows of the finished coordinates, as columns: the report builds
     Row objects (names, index tuples) only when they are read."""
@@ -625,6 +810,7 @@ def compare_gradient(cost, params, gradient=None, *, method="auto", step=None, r
         comp = shorter_steps(setup, comp, rtol, atol, analytic_eps)
         comp = own_lines(setup, comp, rtol, atol, analytic_eps)
         comp = measured_rows(setup, comp, rtol, atol, analytic_eps)
+        comp = one_sided_recheck(setup, comp, rtol, atol, analytic_eps)
     report = finish(setup, comp, used, analytic_eps=analytic_eps,
                     allow_undecided=allow_undecided,
                     probe_unsampled=_worth_probing(setup.layout.size - coords.size, used),
@@ -789,8 +975,10 @@ def finish(setup: Setup, comp: Comparison, method: str, title="gradient check",
     if kinked:
         notes.append(say.on_kinks(kinked))
     undecided = rows.labels(np.flatnonzero(rows.coded(("noisy",))))[0]
-    if undecided:
-        notes.append(say.undecided(undecided, setup.line.noise))
+    unresolved = {coordinate_name(setup.layout, c) for c in comp.unresolved}
+    noisy = [name for name in undecided if name not in unresolved]
+    if noisy:
+        notes.append(say.undecided(noisy, setup.line.noise))
     if len(rows) and len(undecided) == len(rows) and not allow_undecided:
         problems.append(say.nothing_decided(len(rows)))
     any_failing = bool(rows.failing.any())

@@ -49,6 +49,10 @@ class Lines:
     # because one line sampling periodic noise in step with its period looks like a
     # smooth bend of enormous curvature.
     variation: float = 0.0
+    # A low-precision line's level above rounding fell KINK_DROP-fold or more on a shorter
+    # line: kinks lie within the lines' reach of the point (_above_rounding), and any
+    # stencil as long may cross one.
+    kinked: bool = False
 
 
 def noise_direction(size: int, scale: np.ndarray, seed=0, sizes: int = 1) -> np.ndarray:
@@ -151,7 +155,7 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps, largest=None) -> Lin
     """Cost values along three random lines with unrelated spacings (More & Wild's
     difference table on each); the larger consistent noise level is kept."""
     t = stencils.noise_spacing(eps)
-    seen, undefined = [], False
+    seen, undefined, kinked = [], False, False
     reach = line_reach(base, scale, largest)
     v1 = noise_direction(base.size, reach, 0)
     for seed, spacing in ((0, t), (1, t * SECOND_LINE_SPACING), (3, t * THIRD_LINE_SPACING)):
@@ -163,9 +167,10 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps, largest=None) -> Lin
             undefined = True
             continue
         spread = float(np.sum((v / scale) ** 2))
-        seen.append(_settled_line(runner, v, spacing, f0, values,
-                                  stencils.line_features(values, spacing, spread), spread,
-                                  eps))
+        features = stencils.line_features(values, spacing, spread)
+        seen.append(_settled_line(runner, v, spacing, f0, values, features, spread, eps))
+        kinked |= _above_rounding(features, values, eps) and \
+            seen[-1][1].noise <= KINK_DROP * features.noise
     if not seen:
         return Lines(stencils.LineFeatures.none(), False, False, undefined, v1)
     # The largest noise level; the other features (typical curvature, slope, third
@@ -179,14 +184,15 @@ def measure_lines(runner: CostRunner, base, scale, f0, eps, largest=None) -> Lin
         curvature_s2=first.curvature_s2, slope=first.slope, third=first.third,
         values=first.values, spacing=first.spacing,
         largest_curvature_s2=max(f.curvature_s2 for _, f, _ in seen))
-    quantized = any(stencils.looks_quantized(values) for values, _, _ in seen)
+    quantized = any(stencils.looks_quantized(values, eps) for values, _, _ in seen)
     # Flat: no line changed at all (a line along a direction the cost does not depend on,
     # next to lines that change, says nothing about quantization).
     flat = all(np.all(values == f0) for values, _, _ in seen)
     _, line, direction = seen[0]
     moving = [f for values, f, _ in seen if np.any(values != f0)] or [first]
     variation = min(max(f.curvature_s2, f.slope) for f in moving)
-    return Lines(features, quantized, flat, undefined, direction, line.spacing, variation)
+    return Lines(features, quantized, flat, undefined, direction, line.spacing, variation,
+                 kinked)
 
 
 def coordinate_line(setup: "Setup", i: int):
@@ -252,6 +258,23 @@ def _reads_noisy(features, values, eps: float) -> bool:
         _straight_between_bends(values)
 
 
+# In a low-precision cost (eps at least LOW_PRECISION_EPS: float32, float16) a settled level
+# above ROUNDING_LEVELS times eps of its values is measured again too: rounding reads at
+# about 1 there, and float32's lines are 2^-10 long, long enough to cross the kinks of
+# ReLUs whose inputs are 1e-4 from 0 (levels of 10 to 20 were seen); read as noise they
+# loosened every error estimate 100-fold.  The shorter level is taken only where it
+# dropped KINK_DROP-fold or more: a kink's level scales with the spacing, noise's holds.
+# (float64's lines, 2^-20 long, cross kinks only within 1e-6 of the point.)
+LOW_PRECISION_EPS = stencils.LOW_PRECISION_EPS
+ROUNDING_LEVELS = 4.0
+KINK_DROP = 0.25
+
+
+def _above_rounding(features, values, eps: float) -> bool:
+    return eps >= LOW_PRECISION_EPS and \
+        features.noise > ROUNDING_LEVELS * eps * float(np.max(np.abs(values)))
+
+
 def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread,
                   eps: float = 0.0) -> tuple:
     """(values, features, direction) of a line, measured again at shorter spacings where
@@ -263,12 +286,16 @@ def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread,
     are within 1e-7 of 0) settles at a level that scales with the spacing, and read as
     noise it grew every step 100-fold, across the kinks.  The shorter line is taken
     where its level is less than half: noise that is really there keeps its level at any
-    spacing (one more line, 8 evaluations, for a cost that is that noisy)."""
+    spacing (one more line, 8 evaluations, for a cost that is that noisy); so is a
+    low-precision level above rounding (_above_rounding), taken only where it drops
+    KINK_DROP-fold."""
     best = (values, features)
     unsettled = not features.settled
-    if not unsettled and not _too_noisy(features, f0) and \
-            not _reads_noisy(features, values, eps):
+    rounding_only = not unsettled and not _too_noisy(features, f0) and \
+        not _reads_noisy(features, values, eps)
+    if rounding_only and not _above_rounding(features, values, eps):
         return best + (v,)
+    drop = KINK_DROP if rounding_only else 0.5
     # An unsettled line tries every shorter spacing: a line across a pole can look like
     # steady noise at one of them (gammaln at 1e-7, spacing 7e-8), the same level as the
     # line before.  A settled one stops where the level holds.
@@ -278,7 +305,7 @@ def _settled_line(runner: CostRunner, v, spacing, f0, values, features, spread,
         if values is None:
             break
         features = stencils.line_features(values, spacing, spread)
-        if features.noise < 0.5 * best[1].noise:
+        if features.noise < drop * best[1].noise:
             best = (values, features)
         elif not unsettled:
             break
@@ -294,7 +321,7 @@ COARSE_RATIO = 4.0
 COARSEST_SPACING = 2.0 ** -4
 
 
-def look_coarser(runner: CostRunner, lines: Lines, f0: float) -> Lines:
+def look_coarser(runner: CostRunner, lines: Lines, f0: float, eps: float = None) -> Lines:
     """A cost whose values did not change at all along the noise lines: eight more
     points on each of farther lines along the same direction, nearest first, until one
     line's values decide.  Jumps between exact repeats: the cost is piecewise constant
@@ -308,7 +335,7 @@ def look_coarser(runner: CostRunner, lines: Lines, f0: float) -> Lines:
         values = _line_values(runner, lines.direction, spacing, f0)
         if values is None:
             return lines
-        found = stencils.steps_seen(values)
+        found = stencils.steps_seen(values, eps)
         if found is not None:
             return replace(lines, quantized=True) if found else lines
     return lines

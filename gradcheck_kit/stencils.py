@@ -347,11 +347,25 @@ def complex_probe_agrees(complex_values, real_values, f0: float, hc: float, t: f
     return True, ""
 
 
-# Changes of a value below this many epsilons of the values' size are rounding.
+# Changes of a value below this many epsilons of the values' size are rounding: float64's
+# epsilons; a lower precision's own (eps at least LOW_PRECISION_EPS) count
+# LOW_PRECISION_CHANGE each, so that a float32 cost near 1 whose values jitter by an ulp
+# or two along a line (1.2e-7 each, above 1e3 float64 epsilons) is not read as rounded
+# to a grid, while a grid step of 64 float32 ulps (8e-6 relative) still is.
 ROUNDING_CHANGE = 1e3
+LOW_PRECISION_EPS = 6e-8
+LOW_PRECISION_CHANGE = 64.0
 
 
-def steps_seen(values):
+def rounding_change(eps: float = None) -> float:
+    """The largest change relative to the values' size that is rounding, for values of
+    a dtype with epsilon eps (None: float64)."""
+    if eps is not None and eps >= LOW_PRECISION_EPS:
+        return LOW_PRECISION_CHANGE * eps
+    return ROUNDING_CHANGE * float(np.finfo(float).eps)
+
+
+def steps_seen(values, eps: float = None):
     """What equally spaced values say about a piecewise-constant cost: True where they
     look quantized (see looks_quantized); False where they cannot be, because some
     change is of rounding size (the values are not rounded to a coarse grid) or every
@@ -362,15 +376,15 @@ def steps_seen(values):
     moved = d != 0
     if not moved.any():
         return None
-    if looks_quantized(f):
+    if looks_quantized(f, eps):
         return True
-    small = np.abs(d) <= ROUNDING_CHANGE * np.finfo(float).eps * float(np.max(np.abs(f)))
+    small = np.abs(d) <= rounding_change(eps) * float(np.max(np.abs(f)))
     if np.any(moved & small) or moved.all():
         return False
     return None
 
 
-def looks_quantized(values) -> bool:
+def looks_quantized(values, eps: float = None) -> bool:
     """Equally spaced values that repeat exactly and jump in between: a rounded or
     integer-valued output (piecewise constant).  Either each jump stands alone between
     repeats, or the values climb (or fall) in a staircase whose treads, two or more,
@@ -381,7 +395,7 @@ def looks_quantized(values) -> bool:
     zero = d == 0
     if not zero.any() or zero.all():
         return False
-    big = np.abs(d) > ROUNDING_CHANGE * np.finfo(float).eps * float(np.max(np.abs(f)))
+    big = np.abs(d) > rounding_change(eps) * float(np.max(np.abs(f)))
     moved = np.flatnonzero(~zero)
     if not big[moved].all():
         return False
