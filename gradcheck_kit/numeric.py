@@ -432,7 +432,7 @@ def _run_stencils(setup: Setup, method: str, coords: np.ndarray, h: np.ndarray):
 # LOW_PRECISION_TERMS times the row's own sizes: its share of the analytic allowance (3e-5
 # in float32) times an entry of 1e3 let a 5% error in an entry of 0.65 pass.  float64 keeps
 # the largest entry (a correct erfcx derivative of record cancels that far).
-LOW_PRECISION = 6e-8
+LOW_PRECISION = stencils.LOW_PRECISION_EPS
 LOW_PRECISION_TERMS = 10.0
 
 

@@ -536,7 +536,7 @@ def one_sided_recheck(setup: Setup, first: Comparison, rtol, atol,
             setup.runner.interrupted:
         return first
     # The complex step never leaves the point: a kink beside it does not touch its value.
-    if np.finfo(setup.runner.output_dtype).eps < probes.LOW_PRECISION_EPS or \
+    if np.finfo(setup.runner.output_dtype).eps < stencils.LOW_PRECISION_EPS or \
             first.numeric.method == "complex-step":
         return first
     est = first.numeric.estimates
@@ -635,8 +635,8 @@ def one_sided_recheck(setup: Setup, first: Comparison, rtol, atol,
         confirmed = ~take & says_no
         if at_kink.any():
             kinks = stencils.Kinks(at_kink, low, high, rung.plus_error + rung.minus_error)
-            again.verdict = verdicts.apply_kinks(again.verdict, first.analytic[numeric.coords],
-                                                 kinks, again.allowed, again.details)
+            again.verdict = verdicts.apply_kinks(again.verdict, a, kinks, again.allowed,
+                                                 again.details)
             take |= at_kink
         for j in np.flatnonzero(take):
             if again.details[j]:

@@ -258,20 +258,19 @@ def _reads_noisy(features, values, eps: float) -> bool:
         _straight_between_bends(values)
 
 
-# In a low-precision cost (eps at least LOW_PRECISION_EPS: float32, float16) a settled level
-# above ROUNDING_LEVELS times eps of its values is measured again too: rounding reads at
-# about 1 there, and float32's lines are 2^-10 long, long enough to cross the kinks of
-# ReLUs whose inputs are 1e-4 from 0 (levels of 10 to 20 were seen); read as noise they
-# loosened every error estimate 100-fold.  The shorter level is taken only where it
-# dropped KINK_DROP-fold or more: a kink's level scales with the spacing, noise's holds.
-# (float64's lines, 2^-20 long, cross kinks only within 1e-6 of the point.)
-LOW_PRECISION_EPS = stencils.LOW_PRECISION_EPS
+# In a low-precision cost (eps at least stencils.LOW_PRECISION_EPS: float32, float16) a
+# settled level above ROUNDING_LEVELS times eps of its values is measured again too:
+# rounding reads at about 1 there, and float32's lines are 2^-10 long, long enough to
+# cross the kinks of ReLUs whose inputs are 1e-4 from 0 (levels of 10 to 20 were seen);
+# read as noise they loosened every error estimate 100-fold.  The shorter level is taken
+# only where it dropped KINK_DROP-fold or more: a kink's level scales with the spacing,
+# noise's holds. (float64's lines, 2^-20 long, cross kinks only within 1e-6 of the point.)
 ROUNDING_LEVELS = 4.0
 KINK_DROP = 0.25
 
 
 def _above_rounding(features, values, eps: float) -> bool:
-    return eps >= LOW_PRECISION_EPS and \
+    return eps >= stencils.LOW_PRECISION_EPS and \
         features.noise > ROUNDING_LEVELS * eps * float(np.max(np.abs(values)))
 
 
