@@ -28,16 +28,71 @@ from .errors import CheckInputError, CheckInterrupted, ExecutorError
 from .plan import check_executor
 from .tree import Layout, coordinate_name, flatten, rebuild, rebuilder
 
-# Memory of one batch of a vectorized cost.  Far inside the 256 MB a batch may take:
-# measured on a 2-core machine (tests/benchmarks.py), 4 MiB batches, which stay in cache,
-# ran the same costs 1.0-2x faster than 256 MB ones.  Batches sized from the cache
-# (256 KiB - 1 MiB) were measured too, and were not faster: 0.93-0.96x the time of
-# 4 MiB for an elementwise cost, but 1.1-1.9x for costs of many small operations per
-# batch (their per-call overhead grows with the number of batches), so 4 MiB stays.
-# Settable: a cost with a large fixed cost per call (a compiled or accelerator kernel)
-# may want bigger batches.
-DEFAULT_BATCH_BYTES = 4 * 2**20
-DEFAULT_CHUNK_BYTES = DEFAULT_BATCH_BYTES   # the former name, read by tests/benchmarks.py
+# Memory of one batch of a vectorized cost: None sizes it from the machine's cache
+# (batch_bytes_from_cache); a number of bytes fixes it (a cost with a large fixed cost per
+# call, a compiled or accelerator kernel, may want bigger batches).  Read at run time.
+DEFAULT_BATCH_BYTES = None
+DEFAULT_CHUNK_BYTES = None       # the former name of DEFAULT_BATCH_BYTES, still read
+# Measured on a 2-core machine (1 MiB of L2 per core, 32 MiB of L3 shared; tests/
+# benchmarks.py): 4 MiB batches ran costs of many small operations per batch 1.1-2.4x
+# faster than batches of 256 KiB - 1 MiB (their per-call overhead grows with the number
+# of batches) and 1.0-1.14x faster than 16 MiB ones (which leave the cache); elementwise
+# costs ran the same at every size.  So a batch takes a quarter of one core's share of
+# the last-level cache (room for the cost's temporaries of the batch's size beside it):
+# 4 MiB there.  Where the machine does not say, 4 MiB.
+CACHE_SHARE = 0.25
+FALLBACK_BATCH_BYTES = 4 * 2**20
+SMALLEST_BATCH_BYTES = 2**20
+LARGEST_BATCH_BYTES = 16 * 2**20
+CPU_CACHES = "/sys/devices/system/cpu/cpu0/cache"    # Linux; other systems take the fallback
+
+
+@functools.lru_cache(maxsize=None)
+def batch_bytes_from_cache(folder: str = CPU_CACHES) -> int:
+    """A quarter of one core's share of the last-level data cache, within 1 - 16 MiB;
+    FALLBACK_BATCH_BYTES where the system does not describe its caches (read once).
+
+    Examples
+    --------
+    >>> batch_bytes_from_cache("/no/such/folder") == FALLBACK_BATCH_BYTES
+    True
+    """
+    try:
+        caches = [_cache_entry(os.path.join(folder, name)) for name in os.listdir(folder)
+                  if name.startswith("index")]
+    except (OSError, ValueError):
+        return FALLBACK_BATCH_BYTES
+    caches = [c for c in caches if c is not None]
+    if not caches:
+        return FALLBACK_BATCH_BYTES
+    _, size, sharing = max(caches)
+    share = int(CACHE_SHARE * size / max(sharing, 1))
+    return min(max(share, SMALLEST_BATCH_BYTES), LARGEST_BATCH_BYTES)
+
+
+def _cache_entry(folder: str):
+    """(level, bytes, cpus sharing it) of one cache in Linux's sysfs, None for an
+    instruction cache."""
+    def read(name):
+        with open(os.path.join(folder, name)) as f:
+            return f.read().strip()
+    if read("type") == "Instruction":
+        return None
+    size = read("size")
+    units = {"K": 2**10, "M": 2**20, "G": 2**30}
+    number = int(size[:-1]) * units[size[-1]] if size[-1] in units else int(size)
+    cpus = 0
+    for part in read("shared_cpu_list").split(","):
+        lo, _, hi = part.partition("-")
+        cpus += int(hi or lo) - int(lo) + 1
+    return int(read("level")), number, cpus
+
+
+def default_batch_bytes() -> int:
+    """DEFAULT_BATCH_BYTES where it is set, else the size from the machine's cache."""
+    return DEFAULT_BATCH_BYTES or DEFAULT_CHUNK_BYTES or batch_bytes_from_cache()
+
+
 PROGRESS_AFTER_SECONDS = 2.0       # show a bar when the run looks longer than this
 
 
@@ -593,7 +648,7 @@ class CostRunner:
     vectorized : bool
     executor : concurrent.futures.Executor or None
     batch_bytes : int, optional
-        Memory of one vectorized batch (default DEFAULT_BATCH_BYTES, read at run time).
+        Memory of one vectorized batch (default: default_batch_bytes(), at run time).
     progress : bool or None
         None: a bar when the run looks longer than PROGRESS_AFTER_SECONDS on a terminal.
     name : str, optional
@@ -750,7 +805,7 @@ class CostRunner:
         if self.vectorized:
             values, failures, interrupted = _run_vectorized(
                 self.cost, self.layout, self.base, where, amounts,
-                self.batch_bytes or DEFAULT_BATCH_BYTES, bar, reuse=not self.edits_input)
+                self.batch_bytes or default_batch_bytes(), bar, reuse=not self.edits_input)
         elif self.executor is not None:
             return _run_executor(self.cost, self.layout, self.base, where, amounts,
                                  self.executor, bar, reuse=not self.edits_input)

@@ -391,10 +391,11 @@ def looks_quantized(values, eps: float = None) -> bool:
     lie between jumps of one direction.  A plateau next to a sloped piece (a hinge), or
     one plateau between two (a dead zone), is not: there the changes come in runs."""
     f = np.asarray(values, dtype=float)
+    steps = _differences(f.tolist(), 1)   # the usual answer, without numpy's per-call cost
+    if 0.0 not in steps or not any(steps):
+        return False          # no repeat, or nothing but repeats
     d = np.diff(f)
     zero = d == 0
-    if not zero.any() or zero.all():
-        return False
     big = np.abs(d) > rounding_change(eps) * float(np.max(np.abs(f)))
     moved = np.flatnonzero(~zero)
     if not big[moved].all():
@@ -459,17 +460,29 @@ def line_features(values, t: float, spread: float) -> LineFeatures:
     smooth side of it (see smooth_side).
     """
     f = np.asarray(values, dtype=float)
-    mid, half = len(f) // 2, (len(f) // 2) * t
-    g = smooth_side(f)
-    noise, order = _noise_of_side(g.tolist())
+    # Plain Python on the line's few values, as the difference table (numpy's per-call
+    # cost was most of a small check); the same float operations, so the same bits.
+    fl = f.tolist()
+    mid, half = len(fl) // 2, (len(fl) // 2) * t
+    kink = _kink_point(fl)
+    g = _side_of(fl, kink)
+    noise, order = _noise_of_side(g)
     m = (len(g) - 1) // 2
     second = max(0.0, abs(g[2 * m] - 2 * g[m] + g[0]) - 4 * noise)
-    slope = max(0.0, float(np.max(np.abs(f - f[mid]))) - 3 * noise)
-    third = max(0.0, float(np.max(np.abs(np.diff(g, 3)), initial=0.0)) - 8 * noise)
-    lone = len(g) < len(f) and not _slope_changes(f.tolist(), _kink_point(f.tolist()) - 1)
+    centre = fl[mid]
+    slope = max(0.0, max(abs(v - centre) for v in fl) - 3 * noise)
+    third = max(0.0, max(map(abs, _differences(g, 3)), default=0.0) - 8 * noise)
+    lone = len(g) < len(fl) and not _slope_changes(fl, kink - 1)
     return LineFeatures(noise, order, second / (m * t) ** 2 / spread, slope / half,
-                        third / t ** 3, f, t, settled=table_settles(g.tolist(), noise),
+                        third / t ** 3, f, t, settled=table_settles(g, noise),
                         lone_value=lone)
+
+
+def _differences(f: list, k: int) -> list:
+    """The k-th differences of f, as np.diff(f, k) computes them."""
+    for _ in range(k):
+        f = [b - a for a, b in zip(f, f[1:])]
+    return f
 
 
 def smooth_side(values) -> np.ndarray:
@@ -479,7 +492,13 @@ def smooth_side(values) -> np.ndarray:
     differences; the side kept includes the point nearest the kink as an end point.
     """
     f = np.asarray(values, dtype=float)
-    p = _kink_point(f.tolist())
+    fl = f.tolist()
+    side = _side_of(fl, _kink_point(fl))
+    return f if len(side) == len(fl) else np.array(side)
+
+
+def _side_of(f: list, p) -> list:
+    """smooth_side of the values f (a list) whose spike point is p (or None)."""
     if p is not None:
         side = f[:p + 1] if p + 1 >= len(f) - p else f[p:]
         if len(side) >= 4:
@@ -565,9 +584,9 @@ def _difference_table_noise(f) -> tuple:
     """
     values = f if isinstance(f, list) else \
         [float(v) for v in np.asarray(f, dtype=float).reshape(-1)]
-    if not values or not all(math.isfinite(v) for v in values):
+    if not values or not all(map(math.isfinite, values)):
         return 0.0, 0
-    size = max(abs(v) for v in values)
+    size = max(map(abs, values))
     if not size > 0:
         return 0.0, 0
     level, order = _difference_table_levels([v / size for v in values])
@@ -602,26 +621,25 @@ def _numpy_sum(a: list) -> float:
     return _numpy_sum(a[:half]) + _numpy_sum(a[half:])
 
 
-def _table_orders(f):
-    """(k, sigma_k, whether the k-th differences change sign) for k = 1, 2, ... of
-    values f scaled to at most 1 in size (see _difference_table_noise)."""
-    diffs = list(f)
-    for k in range(1, len(diffs) - 1):
-        diffs = [b - a for a, b in zip(diffs, diffs[1:])]
-        gamma = _GAMMA[k] if k < len(_GAMMA) else math.factorial(k) ** 2 / math.factorial(2 * k)
-        mean = _numpy_sum([d * d for d in diffs]) / len(diffs)
-        yield k, math.sqrt(gamma * mean), max(diffs) > 0 and min(diffs) < 0
-
-
 def _first_consistent(f) -> tuple:
-    """(the first consistent order's (k, sigma_k, changes) or None, every order seen) of
-    values f scaled to at most 1 in size.  It stops as soon as an order's next two are
-    known: the orders above it cannot change the answer (it is nonzero, so not all
-    vanish)."""
+    """(the first consistent order's (k, sigma_k, whether the k-th differences change
+    sign) or None, every order seen) of values f scaled to at most 1 in size.  It stops
+    as soon as an order's next two are known: the orders above it cannot change the
+    answer (it is nonzero, so not all vanish).  sigma_k = sqrt(gamma_k mean(d_k^2))."""
     sigmas = []
-    for item in _table_orders(f):
-        sigmas.append(item)
-        if len(sigmas) >= 3 and _consistent(*sigmas[-3:]):
+    diffs = f
+    for k in range(1, len(f) - 1):
+        diffs = [b - a for a, b in zip(diffs, diffs[1:])]
+        m = len(diffs)
+        if m < 8:            # _numpy_sum's plain loop, inline: the common short line
+            total = 0.0
+            for d in diffs:
+                total += d * d
+        else:
+            total = _numpy_sum([d * d for d in diffs])
+        gamma = _GAMMA[k] if k < len(_GAMMA) else math.factorial(k) ** 2 / math.factorial(2 * k)
+        sigmas.append((k, math.sqrt(gamma * (total / m)), max(diffs) > 0 and min(diffs) < 0))
+        if k >= 4 and _consistent(*sigmas[-3:]):     # the first order must be 2 or more
             return sigmas[-3], sigmas
     return None, sigmas
 

@@ -116,7 +116,7 @@ def overhead():
           f"ratio tool/loop = {tool / loop:.2f}  (target <= 1.3; largest difference "
           f"{close:.1e})")
     print(f"[vectorized] n~{N}, the same 2n points in batches of "
-          f"{gk.evaluate.DEFAULT_CHUNK_BYTES >> 20} MiB, against the bare loop")
+          f"{gk.evaluate.default_batch_bytes() >> 20} MiB, against the bare loop")
     cases = [("w . cos x", cheap_cost, cheap_batched, X0),
              ("tanh model, 20 x (10x10)", *layered(20, 10)),
              ("tanh model, 40 x (7x7)", *layered(40, 7))]
@@ -381,13 +381,14 @@ def plugin_row():
 
 def batch_row():
     from gradcheck_kit import evaluate
-    default = evaluate.DEFAULT_BATCH_BYTES
-    print(f"[vectorized batches] time with batches of 256 KiB, 1 MiB and 16 MiB / with the "
-          f"default {default >> 20} MiB (> 1: the default is faster)")
+    default = evaluate.default_batch_bytes()
+    print(f"[vectorized batches] time with batches of 256 KiB, 1 MiB, 4 MiB and 16 MiB / with "
+          f"the size from this machine's cache, {default >> 10} KiB (> 1: the cache's size is "
+          "faster)")
     tanh_one, tanh_batch, tanh_x = layered(20, 10)
     cases = [("w . cos x", cheap_batched, X0), ("tanh model, 20 x (10x10)", tanh_batch, tanh_x),
              ("least squares, 256 rows", least_squares(256)[1], X0)]
-    sizes = (2**18, 2**20, default, 2**24)
+    sizes = sorted({2**18, 2**20, 2**22, default, 2**24})
     for name, batch, x in cases:
         def run(size, batch=batch, x=x):
             def go():
@@ -395,7 +396,7 @@ def batch_row():
                 try:
                     gk.numeric_gradient(batch, x, method="central", vectorized=True)
                 finally:
-                    evaluate.DEFAULT_BATCH_BYTES = default
+                    evaluate.DEFAULT_BATCH_BYTES = None
             return go
         t = alternated({size: run(size) for size in sizes})
         ratios = "  ".join(f"{size >> 10} KiB {t[size] / t[default]:.2f}x" for size in sizes

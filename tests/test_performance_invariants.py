@@ -6,7 +6,9 @@
   caller's arrays stay unchanged.
 - Rows are named a column at a time (tree.entry_names), leaves are rebuilt as views
   (tree.rebuilder), the noise difference table runs in plain Python
-  (stencils._difference_table_levels): each must equal the one-at-a-time version.
+  (stencils._difference_table_levels), and so do a line's features
+  (stencils.line_features): each must equal the one-at-a-time or numpy version.
+- Vectorized batches take a quarter of one core's share of the last-level cache.
 - `import gradcheck_kit` leaves multiprocessing alone (a subprocess reads sys.modules).
 - Group testing finds 3 wrong coordinates among 1e5 in few evaluations (fixed seed).
 """
@@ -255,3 +257,103 @@ def test_group_testing_finds_three_of_a_hundred_thousand_in_few_evaluations():
     assert sorted(r.flat_index for r in report.mismatches) == bad
     assert report.extra["probes"] <= 30
     assert report.evaluations <= 70
+
+
+# --- vectorized batches sized from the machine's cache --------------------------------------
+def _caches(folder, entries):
+    """A fake Linux sysfs cache folder: (level, type, size, shared_cpu_list) per index."""
+    for k, (level, kind, size, shared) in enumerate(entries):
+        index = folder / f"index{k}"
+        index.mkdir()
+        for name, value in (("level", level), ("type", kind), ("size", size),
+                            ("shared_cpu_list", shared)):
+            (index / name).write_text(f"{value}\n")
+    return str(folder)
+
+
+@pytest.mark.parametrize("last_level, expected", [
+    ((3, "Unified", "32768K", "0-1"), 4 * 2**20),    # the test machine: a quarter of 16 MiB
+    ((3, "Unified", "8192K", "0-7"), 2**20),         # 1 MiB per core would give 256 KiB: floor
+    ((3, "Unified", "256M", "0"), 16 * 2**20),       # 64 MiB: capped
+    ((3, "Unified", "12288K", "0,2-3"), 2**20),      # three cores share 12 MiB: 1 MiB each
+    ((2, "Unified", "2048K", "0"), 2**20),           # no L3: the L2 is the last level
+])
+def test_batch_size_is_a_quarter_of_a_cores_share_of_the_last_level_cache(
+        tmp_path, last_level, expected):
+    from gradcheck_kit.evaluate import batch_bytes_from_cache
+    entries = [(1, "Data", "32K", "0"), (1, "Instruction", "32K", "0")]
+    if last_level[0] == 3:
+        entries.append((2, "Unified", "1024K", "0"))
+    folder = _caches(tmp_path, entries + [last_level])
+    assert batch_bytes_from_cache(folder) == expected
+
+
+def test_batch_size_falls_back_where_the_caches_are_not_described(tmp_path):
+    from gradcheck_kit.evaluate import FALLBACK_BATCH_BYTES, batch_bytes_from_cache
+    assert batch_bytes_from_cache(str(tmp_path / "missing")) == FALLBACK_BATCH_BYTES
+    assert batch_bytes_from_cache(str(tmp_path)) == FALLBACK_BATCH_BYTES      # empty
+    (tmp_path / "broken").mkdir()
+    broken = _caches(tmp_path / "broken", [(3, "Unified", "lots", "0-1")])
+    assert batch_bytes_from_cache(broken) == FALLBACK_BATCH_BYTES
+
+
+def test_vectorized_runs_take_the_cache_size_unless_a_size_is_set(monkeypatch):
+    from gradcheck_kit import evaluate
+    from gradcheck_kit.tree import flatten
+    n = 40
+    base, layout = flatten(np.linspace(0.1, 1.0, n))
+    seen = []
+
+    def batched(x):
+        seen.append(x.shape[0])
+        return np.sum(x * x, axis=1)
+
+    monkeypatch.setattr(evaluate, "batch_bytes_from_cache", lambda: 6 * n * 8)
+    evaluate.CostRunner(batched, layout, base, vectorized=True).run(
+        list(range(n)) * 2, [1e-3] * (2 * n))
+    assert max(seen) == 6 and sum(seen) == 2 * n
+    seen.clear()
+    monkeypatch.setattr(evaluate, "DEFAULT_BATCH_BYTES", 10 * n * 8)
+    evaluate.CostRunner(batched, layout, base, vectorized=True).run(
+        list(range(n)) * 2, [1e-3] * (2 * n))
+    assert max(seen) == 10
+
+
+def _numpy_line_features(values, t, spread):
+    """stencils.line_features as it was written with numpy (the reference)."""
+    f = np.asarray(values, dtype=float)
+    mid, half = len(f) // 2, (len(f) // 2) * t
+    g = stencils.smooth_side(f)
+    noise, order = stencils._noise_of_side(g.tolist())
+    m = (len(g) - 1) // 2
+    second = max(0.0, abs(g[2 * m] - 2 * g[m] + g[0]) - 4 * noise)
+    slope = max(0.0, float(np.max(np.abs(f - f[mid]))) - 3 * noise)
+    third = max(0.0, float(np.max(np.abs(np.diff(g, 3)), initial=0.0)) - 8 * noise)
+    lone = len(g) < len(f) and \
+        not stencils._slope_changes(f.tolist(), stencils._kink_point(f.tolist()) - 1)
+    return (noise, order, second / (m * t) ** 2 / spread, slope / half, third / t ** 3,
+            stencils.table_settles(g.tolist(), noise), lone)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.floats(-1e3, 1e3, allow_nan=False), min_size=9, max_size=9),
+       st.sampled_from([0.0, 1e-9, 1e-3]), st.integers(0, 8), st.floats(-5, 5))
+def test_line_features_in_plain_python_are_bitwise_the_numpy_version(noise, size, at, jump):
+    # smooth values, a little noise, and sometimes a kink or one value off the line
+    line = [1.5 + 0.3 * j + 0.02 * j * j + size * e for j, e in zip(range(-4, 5), noise)]
+    line[at] += jump * size
+    if jump > 4:
+        line = [v + 0.7 * max(0, j - at) for j, v in enumerate(line)]
+    got = stencils.line_features(line, 2.0 ** -20, 3.0)
+    assert (got.noise, got.order, got.curvature_s2, got.slope, got.third, got.settled,
+            got.lone_value) == _numpy_line_features(line, 2.0 ** -20, 3.0)
+    assert stencils.looks_quantized(line) == _numpy_looks_quantized(line)
+
+
+def _numpy_looks_quantized(values):
+    """looks_quantized without its plain-Python first test."""
+    d = np.diff(np.asarray(values, dtype=float))
+    zero = d == 0
+    if not zero.any() or zero.all():
+        return False
+    return stencils.looks_quantized(values)
