@@ -95,9 +95,11 @@ def decide(analytic, numeric, allowed, failed) -> np.ndarray:
     finite = np.isfinite(analytic) & np.isfinite(numeric)
     with np.errstate(invalid="ignore"):
         close = np.abs(analytic - numeric) <= allowed
-    # One str object for every row (an object array of n pointers): np.where(...).astype
-    # would box a new string per row, 7 parameter vectors at n = 1e5.
-    verdict = np.full(close.shape, "disagree", dtype=object)
+    # One str object for every row (an object array of n pointers): np.where(...).astype,
+    # and np.full too (numpy 2 casts the str to a unicode array first), would box a new
+    # string per row, 7 parameter vectors at n = 1e5.
+    verdict = np.empty(close.shape, dtype=object)
+    verdict.fill("disagree")
     verdict[close] = "agree"
     verdict[~finite] = "non-finite"
     verdict[failed] = "error"

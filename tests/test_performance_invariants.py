@@ -357,3 +357,14 @@ def _numpy_looks_quantized(values):
     if not zero.any() or zero.all():
         return False
     return stencils.looks_quantized(values)
+
+
+def test_verdicts_share_one_string_object_per_verdict():
+    # np.full(..., "disagree", dtype=object) boxes a new str per row under numpy 2 (7
+    # parameter vectors at n = 1e5); the rows must share one object per verdict.
+    from gradcheck_kit import verdicts
+    a = np.array([1.0, 2.0, 3.0, 4.0, np.nan])
+    n = np.array([1.0, 2.5, 3.0, 5.0, 1.0])
+    v = verdicts.decide(a, n, np.full(5, 0.1), np.zeros(5, dtype=bool))
+    assert list(v) == ["agree", "disagree", "agree", "disagree", "non-finite"]
+    assert v[1] is v[3] and v[0] is v[2]
