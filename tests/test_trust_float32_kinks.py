@@ -163,3 +163,42 @@ def test_ulp_steps_are_rounding_in_float32_and_grid_steps_in_float64():
     assert looks_quantized(jitter) is True      # float64 values: 5e8 epsilons apart
     grid = 1.0 + 1e-3 * np.array([0, 0, 0, 1, 1, 1, 1, 2, 2])
     assert looks_quantized(grid, one_ulp) is True
+
+
+def _net_with_kinks_at_the_point(seed, distances):
+    """A float32 leaky-ReLU net with zero biases and a zero input row (every unit's input
+    on that sample is exactly 0: kinks at the point for each bias), and four other
+    pre-activations moved to `distances` from 0; its right-derivative backprop gradient."""
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(12, 4)).astype(np.float32)
+    X[3] = 0
+    y = rng.normal(size=12).astype(np.float32)
+    W1 = rng.normal(size=(4, 6)).astype(np.float32)
+    W2 = rng.normal(size=6).astype(np.float32)
+    for (i, j), d in zip([(0, 0), (1, 2), (5, 4), (7, 1)], distances):
+        k = int(np.argmax(np.abs(X[i])))
+        W1[k, j] = np.float32(W1[k, j] - (X[i] @ W1[:, j] - d) / X[i, k])
+
+    def cost(p):
+        z = X @ p["W1"] + p["b1"]
+        return 0.5 * np.mean((np.where(z > 0, z, 0.05 * z) @ p["W2"] - y) ** 2)
+
+    def gradient(p):
+        z = X @ p["W1"] + p["b1"]
+        a = np.where(z > 0, z, 0.05 * z)
+        r = (a @ p["W2"] - y) / len(y)
+        g = np.outer(r, p["W2"]) * np.where(z >= 0, 1.0, 0.05)   # relu'(0) from the right
+        return {"W1": X.T @ g, "b1": g.sum(0), "W2": a.T @ r}
+    return cost, gradient, {"W1": W1, "b1": np.zeros(6, np.float32), "W2": W2}
+
+
+@pytest.mark.xfail(strict=True, reason="known false alarm (DEVELOPERS.md, 'Choices written "
+                   "down'): a kink at the point and another 5e-4 away on one side; the forward "
+                   "side across it looks precise and b1[4]'s right derivative is called wrong")
+def test_kink_at_the_point_next_to_another_within_the_step():
+    # b1[4]: exact right derivative 0.3774 (analytic), left 0.2590 (float64 differences
+    # of the same float32 cost); the forward side at step 4e-3 crosses a kink 5e-4 away.
+    cost, gradient, params = _net_with_kinks_at_the_point(
+        500, (-8.25017601e-04, 1.74006013e-05, -5.04578711e-04, 4.44824702e-03))
+    report = gk.compare_gradient(cost, params, gradient, method="central")
+    assert report.passed, str(report)
