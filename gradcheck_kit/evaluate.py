@@ -36,8 +36,9 @@ DEFAULT_CHUNK_BYTES = None       # the former name of DEFAULT_BATCH_BYTES, still
 # Measured on a 2-core machine (1 MiB of L2 per core, 32 MiB of L3 shared; tests/
 # benchmarks.py): 4 MiB batches ran costs of many small operations per batch 1.1-2.4x
 # faster than batches of 256 KiB - 1 MiB (their per-call overhead grows with the number
-# of batches) and 1.0-1.14x faster than 16 MiB ones (which leave the cache); elementwise
-# costs ran the same at every size.  So a batch takes a quarter of one core's share of
+# of batches) and 1.0-1.14x faster than 16 MiB ones (which leave the cache); an
+# elementwise cost ran the same at every size in one run and 1.45x faster at 256 KiB in
+# another, on this shared machine.  So a batch takes a quarter of one core's share of
 # the last-level cache (room for the cost's temporaries of the batch's size beside it):
 # 4 MiB there.  Where the machine does not say, 4 MiB.
 CACHE_SHARE = 0.25
@@ -60,7 +61,7 @@ def batch_bytes_from_cache(folder: str = CPU_CACHES) -> int:
     try:
         caches = [_cache_entry(os.path.join(folder, name)) for name in os.listdir(folder)
                   if name.startswith("index")]
-    except (OSError, ValueError):
+    except (OSError, ValueError, IndexError, KeyError):   # unreadable or unexpected text
         return FALLBACK_BATCH_BYTES
     caches = [c for c in caches if c is not None]
     if not caches:

@@ -295,6 +295,9 @@ def test_batch_size_falls_back_where_the_caches_are_not_described(tmp_path):
     (tmp_path / "broken").mkdir()
     broken = _caches(tmp_path / "broken", [(3, "Unified", "lots", "0-1")])
     assert batch_bytes_from_cache(broken) == FALLBACK_BATCH_BYTES
+    (tmp_path / "empty").mkdir()
+    empty = _caches(tmp_path / "empty", [(3, "Unified", "", "")])
+    assert batch_bytes_from_cache(empty) == FALLBACK_BATCH_BYTES
 
 
 def test_vectorized_runs_take_the_cache_size_unless_a_size_is_set(monkeypatch):
