@@ -394,7 +394,7 @@ def looks_quantized(values, eps: float = None) -> bool:
     steps = _differences(f.tolist(), 1)   # the usual answer, without numpy's per-call cost
     if 0.0 not in steps or not any(steps):
         return False          # no repeat, or nothing but repeats
-    d = np.diff(f)
+    d = np.array(steps)
     zero = d == 0
     big = np.abs(d) > rounding_change(eps) * float(np.max(np.abs(f)))
     moved = np.flatnonzero(~zero)
@@ -630,15 +630,9 @@ def _first_consistent(f) -> tuple:
     diffs = f
     for k in range(1, len(f) - 1):
         diffs = [b - a for a, b in zip(diffs, diffs[1:])]
-        m = len(diffs)
-        if m < 8:            # _numpy_sum's plain loop, inline: the common short line
-            total = 0.0
-            for d in diffs:
-                total += d * d
-        else:
-            total = _numpy_sum([d * d for d in diffs])
+        mean = _numpy_sum([d * d for d in diffs]) / len(diffs)
         gamma = _GAMMA[k] if k < len(_GAMMA) else math.factorial(k) ** 2 / math.factorial(2 * k)
-        sigmas.append((k, math.sqrt(gamma * (total / m)), max(diffs) > 0 and min(diffs) < 0))
+        sigmas.append((k, math.sqrt(gamma * mean), max(diffs) > 0 and min(diffs) < 0))
         if k >= 4 and _consistent(*sigmas[-3:]):     # the first order must be 2 or more
             return sigmas[-3], sigmas
     return None, sigmas

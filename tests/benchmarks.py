@@ -385,7 +385,7 @@ def plugin_row():
 
 def batch_row():
     from gradcheck_kit import evaluate
-    default = evaluate.default_batch_bytes()
+    default, previous = evaluate.default_batch_bytes(), evaluate.DEFAULT_BATCH_BYTES
     print(f"[vectorized batches] time with batches of 256 KiB, 1 MiB, 4 MiB and 16 MiB / with "
           f"the size from this machine's cache, {default >> 10} KiB (> 1: the cache's size is "
           "faster)")
@@ -400,7 +400,7 @@ def batch_row():
                 try:
                     gk.numeric_gradient(batch, x, method="central", vectorized=True)
                 finally:
-                    evaluate.DEFAULT_BATCH_BYTES = None
+                    evaluate.DEFAULT_BATCH_BYTES = previous
             return go
         t = alternated({size: run(size) for size in sizes})
         ratios = "  ".join(f"{size >> 10} KiB {t[size] / t[default]:.2f}x" for size in sizes
